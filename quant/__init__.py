@@ -1,0 +1,1 @@
+"""Pure numerics of cest-node (being written; see DEVELOPERS.md for the contract)."""
