@@ -1,0 +1,79 @@
+"""Plain types that cross room boundaries inside node/.
+
+They hold no DICOM networking and no I/O. A series travels down the chain as an
+:class:`AssembledSeries`; the outputs travel to the sender as :class:`OutputBatch`.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+if TYPE_CHECKING:
+    from pydicom import Dataset
+
+
+def series_key(study_uid: str, series_uid: str) -> str:
+    """Pseudonymous key of a series for logs and file names.
+
+    A truncated SHA-256 of the study and series instance UIDs: stable for the same
+    series, and it reveals no patient attribute (common practice for log pseudonyms).
+    """
+    digest = hashlib.sha256(f"{study_uid}\x00{series_uid}".encode()).hexdigest()
+    return f"s-{digest[:16]}"
+
+
+@dataclass
+class AssembledSeries:
+    """A saturation series ready for computation.
+
+    Attributes
+    ----------
+    key
+        Pseudonymous series key (:func:`series_key`).
+    protocol
+        Name of the matched protocol in the config.
+    signal
+        float32 array ``(slices, rows, cols, n_offsets)``: every received frame,
+        placed by slice (ascending position along the slice normal) and by offset.
+    offsets_ppm
+        float64 ``(n_offsets,)``, the saturation offset of each column of ``signal``,
+        sorted ascending (M0 frames, |offset| >= the protocol's M0 threshold, included).
+    references
+        One header-only pydicom Dataset per slice (same order as ``signal``), taken from
+        that slice's M0 frame when there is one, else from its first frame; the derive
+        builders use them for geometry, patient/study and Source Image Sequence.
+    sources
+        All header-only source datasets, ``sources[slice][offset_index]`` (None where a
+        frame is missing).
+    complete
+        True when the expected frame count arrived; False when released by idle timeout.
+    missing
+        Human-readable description of what is missing (empty when complete).
+    clock
+        Times (seconds, ``time.time()``) of events: ``first_instance``, ``last_instance``,
+        ``complete``.
+    """
+
+    key: str
+    protocol: str
+    signal: np.ndarray
+    offsets_ppm: np.ndarray
+    references: list[Dataset]
+    sources: list[list[Dataset | None]]
+    complete: bool = True
+    missing: str = ""
+    clock: dict[str, float] = field(default_factory=dict)
+    instance_count: int = 0
+
+
+@dataclass
+class OutputBatch:
+    """Derived objects of one series for one destination, sent over one association."""
+
+    key: str
+    datasets: list[Dataset]
+    label: str = ""
