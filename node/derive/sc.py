@@ -1,0 +1,98 @@
+"""RGB Secondary Capture builder (PS3.3 A.8.1, Secondary Capture Image IOD), with highdicom.
+
+One image per slice: the map colour-fused over the M0 image, a colour bar with the unit and
+a numeric scale, the method title and the burned-in words "RESEARCH USE ONLY — NOT FOR
+DIAGNOSIS" (so Burned In Annotation is YES). The preview is upscaled, so it keeps the
+patient orientation but not the pixel spacing of the source.
+"""
+
+from __future__ import annotations
+
+import highdicom as hd
+import numpy as np
+from pydicom import Dataset
+from pydicom.sequence import Sequence as DicomSequence
+
+from node.derive.render import SliceRenderer, robust_range
+from node.derive.request import (
+    MANUFACTURER,
+    RESEARCH_STATEMENT,
+    SERIES_KEYWORDS,
+    SOFTWARE_VERSIONS,
+    DerivedRequest,
+    copy_keywords,
+    output_uid,
+    research_description,
+    source_image_item,
+)
+
+KIND = "sc"
+
+
+def _letters(v: np.ndarray) -> str:
+    """Patient orientation letters of a direction (PS3.3 C.7.6.1.1.1: x L, y P, z H)."""
+    names = (("R", "L"), ("A", "P"), ("F", "H"))
+    order = np.argsort(-np.abs(v))
+    out = ""
+    for axis in order:
+        if abs(v[axis]) > 1e-3:
+            out += names[axis][1] if v[axis] > 0 else names[axis][0]
+    return out[:3] or "L"
+
+
+def patient_orientation(ref: Dataset) -> tuple[str, str]:
+    """Row and column directions of the source as Patient Orientation (0020,0020) values."""
+    iop = np.asarray([float(x) for x in ref.ImageOrientationPatient], dtype=np.float64)
+    return _letters(iop[:3]), _letters(iop[3:])
+
+
+def build(req: DerivedRequest) -> list[Dataset]:
+    """Build one RGB Secondary Capture per slice of a request (needs ``req.m0``).
+
+    Returns
+    -------
+    list of Dataset
+        One Secondary Capture Image Storage dataset per slice, in the order of
+        ``req.references``.
+    """
+    if req.m0 is None:
+        raise ValueError("the secondary_capture output needs m0 images for the overlay")
+    assert req.display_range is not None
+    n = len(req.references)
+    rows, cols = req.values.shape[1:]
+    renderer = SliceRenderer(rows, cols, title=req.title, unit=req.unit_ucum,
+                             display_range=req.display_range)
+    m0_range = robust_range(req.m0)
+    description = research_description(req.title, "SC", req.note)
+    comments = (f"{req.title} [{req.unit_ucum}] over M0. {req.note + ' ' if req.note else ''}"
+                f"{RESEARCH_STATEMENT}")
+    out: list[Dataset] = []
+    for i, ref in enumerate(req.references):
+        rgb = renderer.render(req.values[i], req.m0[i], m0_range=m0_range,
+                              label=f"slice {i + 1}/{n}")
+        sc = hd.sc.SCImage.from_ref_dataset(
+            ref_dataset=ref,
+            pixel_array=rgb,
+            photometric_interpretation=hd.PhotometricInterpretationValues.RGB,
+            bits_allocated=8,
+            coordinate_system=hd.CoordinateSystemNames.PATIENT,
+            series_instance_uid=req.series_uid,
+            series_number=req.series_number,
+            sop_instance_uid=output_uid(req.series_uid, KIND, i),
+            instance_number=i + 1,
+            manufacturer=MANUFACTURER,
+            patient_orientation=patient_orientation(ref),
+            transfer_syntax_uid=hd.UID("1.2.840.10008.1.2.1"),
+        )
+        copy_keywords(sc, ref, SERIES_KEYWORDS)
+        sc.SeriesDescription = description
+        sc.SoftwareVersions = SOFTWARE_VERSIONS
+        sc.ContentQualification = "RESEARCH"
+        sc.BurnedInAnnotation = "YES"
+        sc.ImageType = ["DERIVED", "SECONDARY"]
+        sc.ImageComments = comments[:10240]
+        sc.DerivationDescription = (f"{SOFTWARE_VERSIONS}: {req.title} ({req.method}) "
+                                    f"colour-fused over M0. {RESEARCH_STATEMENT}")[:1024]
+        sc.SourceImageSequence = DicomSequence([source_image_item(ref)])
+        out.append(sc)
+    return out
