@@ -258,7 +258,7 @@ class NodeConfig:
                     for v in value
                 )
             elif key == "port":
-                fixed[key] = _port(value, key)
+                fixed[key] = _port(value, key, allow_zero=True)
             elif key == "ae_title":
                 fixed[key] = _ae_title(value, key)
             elif key in ("spool_dir", "log_dir"):

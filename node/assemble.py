@@ -1,0 +1,800 @@
+"""Assembly of received instances into saturation series: protocol match, header rules, completion.
+
+Each instance is matched to a protocol (:class:`~node.config.MatchRule`), its saturation offset
+read by the protocol's :class:`~node.config.OffsetRule`, its slice position computed as
+``ImagePositionPatient . n`` with ``n = row x column`` direction cosines of
+ImageOrientationPatient (PS3.3 C.7.6.2.1.1), and its pixels decoded ONCE, as it arrives, into a
+per-slice float32 stack that grows as new frames appear. Frames are ordered by offset (ties by
+InstanceNumber, then SOP Instance UID), never by arrival; slices by position along the normal.
+An M0 frame is one with ``|offset| >= m0_threshold_ppm``.
+
+Completion: when the expected frame count is reached (see
+:meth:`~node.config.Protocol.expected_count`), or else after ``idle_timeout_s`` without a new
+frame of that series. The release of an association is only a hint: it shortens the wait to
+``release_grace_s`` for series whose expected count is unknown. A series released incomplete is
+processed (``complete=False``, ``missing`` says what is absent) when every slice holds an M0 and
+the protocol's required offsets; otherwise it is held (logged, ``on_held`` called) and a later
+frame of it wakes it up again.
+
+One timer thread waits on a :class:`threading.Condition` for the earliest deadline; one worker
+thread builds the :class:`~node.types.AssembledSeries` and calls ``on_complete``, so the
+receive handlers never wait for either.
+
+Log lines name series by their pseudonymous key only (:func:`node.types.series_key`).
+"""
+
+from __future__ import annotations
+
+import enum
+import logging
+import math
+import queue
+import threading
+import time
+from collections import OrderedDict
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from pydicom import Dataset
+from pydicom.dataelem import DataElement, RawDataElement
+from pydicom.multival import MultiValue
+from pydicom.tag import Tag
+
+from node.config import NodeConfig, OffsetRule, Protocol
+from node.types import AssembledSeries, series_key
+
+__all__ = [
+    "OFFSET_TOLERANCE_PPM",
+    "SLICE_TOLERANCE_MM",
+    "Assembler",
+    "AssemblyError",
+    "Frame",
+    "Placed",
+    "Prepared",
+    "read_offset_ppm",
+    "slice_geometry",
+]
+
+log = logging.getLogger("cest_node.assemble")
+
+OFFSET_TOLERANCE_PPM = 1e-3
+"""Offsets closer than this are the same offset (repeats are kept as separate columns)."""
+SLICE_TOLERANCE_MM = 0.01
+"""Frames whose positions along the slice normal differ by less than this are one slice."""
+_ORIENTATION_TOLERANCE = 1e-4
+_PIXEL_DATA = Tag(0x7FE0, 0x0010)
+_PER_FRAME = Tag(0x5200, 0x9230)  # PerFrameFunctionalGroupsSequence
+_SHARED = Tag(0x5200, 0x9229)  # SharedFunctionalGroupsSequence
+
+
+class AssemblyError(ValueError):
+    """An instance cannot be placed: a header the protocol needs is missing or inconsistent.
+
+    The message names the attribute and the problem, never a patient attribute.
+    """
+
+
+class Placed(enum.Enum):
+    """What :meth:`Assembler.place` did with an instance."""
+
+    ADDED = "added"
+    DUPLICATE = "duplicate"  # SOP Instance UID already in the series: first one kept
+    LATE = "late"  # the series was already released
+    UNMATCHED = "unmatched"  # no protocol matches (only from :meth:`Assembler.add`)
+
+
+@dataclass
+class Frame:
+    """One decoded frame, ready to be placed."""
+
+    offset_ppm: float
+    position_mm: float
+    pixels: np.ndarray  # (rows, cols) float32
+    tiebreak: tuple[int, str, int]  # (InstanceNumber, SOP Instance UID, frame number)
+    frame_number: int | None = None  # 1-based for multi-frame instances, None for single
+
+
+@dataclass
+class Prepared:
+    """A matched, decoded instance (output of :meth:`Assembler.prepare`)."""
+
+    key: str
+    protocol: Protocol
+    sop_instance_uid: str
+    header: Dataset  # the dataset without its pixel data
+    frames: list[Frame]
+    orientation: tuple[float, ...]
+    rows: int
+    cols: int
+    images_in_acquisition: int | None = None
+
+
+# --------------------------------------------------------------------------- header rules
+def _candidates(ds: Dataset, frame_index: int | None) -> list[Dataset]:
+    """Datasets to search for an attribute, most specific first.
+
+    For a multi-frame (enhanced) instance: the items of the frame's per-frame functional
+    group macros, then those of the shared functional groups, then the top level.
+    """
+    out: list[Dataset] = []
+    if frame_index is not None:
+        for tag in (_PER_FRAME, _SHARED):
+            if tag in ds:
+                seq = ds[tag].value
+                idx = frame_index if tag == _PER_FRAME else 0
+                if len(seq) > idx:
+                    group = seq[idx]
+                    out.append(group)
+                    for elem in group:
+                        if elem.VR == "SQ":
+                            out.extend(elem.value)
+    out.append(ds)
+    return out
+
+
+def _find(cands: Iterable[Dataset], keyword: str | None = None, tag: int | None = None,
+          private_creator: str | None = None) -> Any:
+    """The first value found in ``cands`` (None when absent everywhere)."""
+    for d in cands:
+        if private_creator is not None and tag is not None:
+            group, byte = tag >> 16, tag & 0xFF
+            try:
+                block = d.private_block(group, private_creator)
+            except KeyError:
+                continue
+            if byte in block:
+                return block[byte].value
+            continue
+        if keyword is not None:
+            if keyword in d:
+                return d[keyword].value
+        elif tag is not None and tag in d:
+            return d[tag].value
+    return None
+
+
+def _as_text(value: Any) -> str:
+    if isinstance(value, bytes | bytearray):
+        return bytes(value).decode("latin-1").strip("\x00 ")
+    if isinstance(value, MultiValue | list | tuple):
+        return "\\".join(str(v) for v in value)
+    return str(value).strip()
+
+
+def _as_number(value: Any, what: str) -> float:
+    if isinstance(value, MultiValue | list | tuple):
+        if len(value) != 1:
+            raise AssemblyError(f"{what}: expected one number, got {len(value)} values")
+        value = value[0]
+    if isinstance(value, bytes | bytearray):  # e.g. a private DS read as UN (implicit VR)
+        value = _as_text(value)
+    try:
+        x = float(value)
+    except (TypeError, ValueError):
+        raise AssemblyError(f"{what}: not a number ({_as_text(value)[:40]!r})") from None
+    if not math.isfinite(x):
+        raise AssemblyError(f"{what}: not a finite number")
+    return x
+
+
+def read_offset_ppm(ds: Dataset, rule: OffsetRule, *, frame_index: int | None = None) -> float:
+    """The saturation offset of one instance (or one frame of it) in ppm.
+
+    Parameters
+    ----------
+    ds
+        The instance.
+    rule
+        Where the offset is (see :class:`~node.config.OffsetRule`).
+    frame_index
+        0-based frame of a multi-frame instance: the frame's functional groups are
+        searched first.
+
+    Raises
+    ------
+    AssemblyError
+        The attribute is missing, is not a number, does not match the regex, the list index
+        is out of range, or ImagingFrequency is missing for a Hz offset.
+
+    Notes
+    -----
+    Hz to ppm: ``offset_ppm = offset_hz / f0_MHz``, with f0 the instance's ImagingFrequency
+    (0018,0084) in MHz (PS3.3 C.8.3.1); a frequency in Hz divided by one in MHz is ppm.
+    """
+    cands = _candidates(ds, frame_index)
+    what = rule.describe()
+    if rule.kind == "list":
+        assert rule.order_by is not None
+        raw = _find(cands, keyword=rule.order_by)
+        if raw is None:
+            raise AssemblyError(f"{rule.order_by}: missing (needed to pick the offset from "
+                                "the protocol's list)")
+        order = _as_number(raw, rule.order_by)
+        if order != int(order):
+            raise AssemblyError(f"{rule.order_by}: expected an integer, got {order:g}")
+        idx = int(order) - rule.order_start
+        if not 0 <= idx < len(rule.values_ppm):
+            raise AssemblyError(
+                f"{rule.order_by}: value {int(order)} is outside the protocol's list "
+                f"({rule.order_start}..{rule.order_start + len(rule.values_ppm) - 1})")
+        return float(rule.values_ppm[idx])
+    raw = _find(cands, keyword=rule.keyword, tag=rule.tag, private_creator=rule.private_creator)
+    if raw is None:
+        raise AssemblyError(f"offset {what}: missing")
+    pattern = rule.pattern
+    if pattern is not None:
+        text = _as_text(raw)
+        m = pattern.search(text)
+        if m is None:
+            raise AssemblyError(f"offset {what}: the regex does not match the value")
+        group = "value" if "value" in pattern.groupindex else 1
+        value = _as_number(m.group(group), f"offset {what}")
+    else:
+        value = _as_number(raw, f"offset {what}")
+    if rule.unit == "hz":
+        freq = _find(cands, keyword="ImagingFrequency")
+        if freq is None:
+            raise AssemblyError("ImagingFrequency: missing (needed to convert a Hz offset)")
+        f0 = _as_number(freq, "ImagingFrequency")
+        if f0 <= 0:
+            raise AssemblyError(f"ImagingFrequency: must be > 0 MHz, got {f0:g}")
+        value = value / f0
+    return value
+
+
+def slice_geometry(ds: Dataset, *, frame_index: int | None = None
+                   ) -> tuple[float, tuple[float, ...]]:
+    """Position along the slice normal (mm) and the direction cosines of one frame.
+
+    ``position = IPP . (r x c)`` with r, c the row and column direction cosines of
+    ImageOrientationPatient (PS3.3 C.7.6.2.1.1; the normal is their cross product).
+    """
+    cands = _candidates(ds, frame_index)
+    ipp = _find(cands, keyword="ImagePositionPatient")
+    iop = _find(cands, keyword="ImageOrientationPatient")
+    if ipp is None or len(ipp) != 3:
+        raise AssemblyError("ImagePositionPatient: missing or not 3 values")
+    if iop is None or len(iop) != 6:
+        raise AssemblyError("ImageOrientationPatient: missing or not 6 values")
+    try:
+        p = np.array([float(v) for v in ipp])
+        o = np.array([float(v) for v in iop])
+    except (TypeError, ValueError):
+        raise AssemblyError("ImagePositionPatient/ImageOrientationPatient: not numbers") from None
+    normal = np.cross(o[:3], o[3:])
+    norm = float(np.linalg.norm(normal))
+    if not np.isfinite(p).all() or not norm > 0.5:
+        raise AssemblyError("ImageOrientationPatient: row and column cosines are not orthogonal "
+                            "unit vectors")
+    return float(p @ (normal / norm)), tuple(float(v) for v in o)
+
+
+def _header_only(ds: Dataset) -> Dataset:
+    """A shallow copy of ``ds`` without Pixel Data (elements shared, not re-parsed)."""
+    hdr = Dataset({t: e for t, e in ds._dict.items() if t != _PIXEL_DATA})
+    if hasattr(ds, "file_meta"):
+        hdr.file_meta = ds.file_meta
+    implicit, little = ds.original_encoding
+    hdr.set_original_encoding(implicit, little, ds.original_character_set)
+    return hdr
+
+
+def _decode_pixels(ds: Dataset) -> np.ndarray:
+    """Stored pixel values as float32 ``(frames, rows, cols)``, Modality LUT applied.
+
+    Uncompressed little-endian single-sample data is read straight from the Pixel Data bytes
+    (one copy); anything else goes through pydicom's ``pixel_array``. Rescale Slope and
+    Intercept (PS3.3 C.11.1) are applied when present at the top level; per-frame ones by the
+    caller.
+    """
+    rows, cols = int(ds.Rows), int(ds.Columns)
+    n_frames = int(ds.get("NumberOfFrames", 1) or 1)
+    arr: np.ndarray | None = None
+    ts = getattr(getattr(ds, "file_meta", None), "TransferSyntaxUID", None)
+    raw = ds._dict.get(_PIXEL_DATA)
+    if (ts is not None and not ts.is_compressed and ts.is_little_endian
+            and int(ds.get("SamplesPerPixel", 1)) == 1 and raw is not None):
+        bits = int(ds.BitsAllocated)
+        stored = int(ds.get("BitsStored", bits))
+        signed = int(ds.get("PixelRepresentation", 0)) == 1
+        data = raw.value if isinstance(raw, DataElement | RawDataElement) else None
+        if bits in (8, 16, 32) and stored == bits and isinstance(data, bytes | bytearray):
+            dtype = np.dtype(f"<{'i' if signed else 'u'}{bits // 8}")
+            need = rows * cols * n_frames * dtype.itemsize
+            if len(data) < need:
+                raise AssemblyError(f"PixelData: {len(data)} bytes, expected {need}")
+            arr = np.frombuffer(data, dtype=dtype, count=rows * cols * n_frames)
+    if arr is None:
+        try:
+            arr = np.asarray(ds.pixel_array)
+        except Exception as exc:  # pydicom raises many kinds; name the problem, keep going
+            raise AssemblyError(f"PixelData: cannot decode ({type(exc).__name__}: "
+                                f"{str(exc)[:80]})") from None
+        if arr.ndim == 3 and n_frames == 1:
+            raise AssemblyError("PixelData: more than one sample per pixel is not supported")
+    out = arr.reshape(n_frames, rows, cols).astype(np.float32)
+    slope = ds.get("RescaleSlope")
+    intercept = ds.get("RescaleIntercept")
+    if slope is not None and float(slope) != 1.0:
+        out *= np.float32(float(slope))
+    if intercept is not None and float(intercept) != 0.0:
+        out += np.float32(float(intercept))
+    return out
+
+
+# --------------------------------------------------------------------------- series state
+@dataclass
+class _Slice:
+    position_mm: float
+    stack: np.ndarray  # (capacity, rows, cols) float32
+    offsets: list[float] = field(default_factory=list)
+    ties: list[tuple[int, str, int]] = field(default_factory=list)
+    headers: list[Dataset] = field(default_factory=list)
+
+    @property
+    def count(self) -> int:
+        return len(self.offsets)
+
+
+@dataclass
+class _Series:
+    key: str
+    protocol: Protocol
+    rows: int
+    cols: int
+    orientation: tuple[float, ...]
+    expected: int | None
+    capacity: int
+    slices: list[_Slice] = field(default_factory=list)
+    sops: set[str] = field(default_factory=set)
+    n_frames: int = 0
+    first_at: float = 0.0
+    last_at: float = 0.0
+    deadline: float = math.inf  # monotonic
+    released_hint: bool = False
+    held: bool = False
+
+    def slice_for(self, position: float) -> _Slice:
+        for s in self.slices:
+            if abs(s.position_mm - position) < SLICE_TOLERANCE_MM:
+                return s
+        new = _Slice(position, np.empty((self.capacity, self.rows, self.cols), np.float32))
+        self.slices.append(new)
+        return new
+
+
+# --------------------------------------------------------------------------- the assembler
+class Assembler:
+    """Builds :class:`~node.types.AssembledSeries` from instances as they arrive.
+
+    Parameters
+    ----------
+    config
+        The node config (protocols, ``idle_timeout_s``, ``release_grace_s``).
+    on_complete
+        Called from the assembler's worker thread with each released series (one at a time,
+        in release order). Exceptions are logged and do not stop the worker.
+    on_held
+        Optional ``f(series_key, missing_text)``, called from the timer thread when a series
+        is held (incomplete and not processable at the idle timeout).
+
+    Notes
+    -----
+    Call :meth:`start` (or use it as a context manager) before :meth:`add`/:meth:`place`,
+    and :meth:`stop` at the end. For offline use, :meth:`flush` releases every open series
+    at once and waits until ``on_complete`` has been called for them.
+
+    Examples
+    --------
+    >>> done = []
+    >>> with Assembler(cfg, done.append) as asm:      # doctest: +SKIP
+    ...     for ds in datasets:
+    ...         asm.add(ds)
+    ...     asm.flush()
+    """
+
+    def __init__(
+        self,
+        config: NodeConfig,
+        on_complete: Callable[[AssembledSeries], None],
+        *,
+        on_held: Callable[[str, str], None] | None = None,
+    ):
+        self.config = config
+        self.on_complete = on_complete
+        self.on_held = on_held
+        self._cond = threading.Condition()
+        self._series: dict[str, _Series] = {}
+        self._released: OrderedDict[str, float] = OrderedDict()
+        self._work: queue.Queue[tuple[_Series, float] | None] = queue.Queue()
+        self._stopping = False
+        self._timer: threading.Thread | None = None
+        self._worker: threading.Thread | None = None
+
+    # ------------------------------------------------------------------ lifecycle
+    def start(self) -> Assembler:
+        """Start the timer and worker threads (idempotent)."""
+        if self._timer is None:
+            self._stopping = False
+            self._timer = threading.Thread(target=self._timer_loop, name="cest-assemble-timer",
+                                           daemon=True)
+            self._worker = threading.Thread(target=self._worker_loop,
+                                            name="cest-assemble-worker", daemon=True)
+            self._timer.start()
+            self._worker.start()
+        return self
+
+    def stop(self, *, timeout: float = 30.0) -> None:
+        """Stop the threads; series already queued are finished first, open ones stay open."""
+        with self._cond:
+            self._stopping = True
+            self._cond.notify_all()
+        if self._timer is not None:
+            self._timer.join(timeout)
+        if self._worker is not None:
+            self._work.put(None)
+            self._worker.join(timeout)
+        self._timer = self._worker = None
+
+    def __enter__(self) -> Assembler:
+        return self.start()
+
+    def __exit__(self, *exc: object) -> None:
+        self.stop()
+
+    # ------------------------------------------------------------------ intake
+    def match(self, ds: Dataset) -> Protocol | None:
+        """The first protocol whose match rule fits ``ds`` (None: ignore the instance)."""
+        for proto in self.config.protocols:
+            value = ds.get(proto.match.attribute)
+            if value is None:
+                continue
+            if proto.match.pattern.search(_as_text(value)):
+                return proto
+        return None
+
+    def prepare(self, ds: Dataset) -> Prepared | None:
+        """Match, read the header rules and decode the pixels of one instance (no state).
+
+        Returns None when no protocol matches. Safe to call from any thread; the receiver
+        calls it before writing the instance to the spool.
+
+        Raises
+        ------
+        AssemblyError
+            A header the protocol needs is missing or wrong, or the pixels cannot be decoded.
+        """
+        proto = self.match(ds)
+        if proto is None:
+            return None
+        try:
+            study, series, sop = ds.StudyInstanceUID, ds.SeriesInstanceUID, ds.SOPInstanceUID
+        except AttributeError as exc:
+            raise AssemblyError(f"{exc.name or 'a UID'}: missing") from None
+        if "PixelData" not in ds:
+            raise AssemblyError("PixelData: missing")
+        try:
+            rows, cols = int(ds.Rows), int(ds.Columns)
+        except (AttributeError, TypeError, ValueError):
+            raise AssemblyError("Rows/Columns: missing or not integers") from None
+        if rows < 1 or cols < 1:
+            raise AssemblyError(f"Rows/Columns: {rows} x {cols} is empty")
+        pixels = _decode_pixels(ds)
+        multi = _PER_FRAME in ds
+        instance_number = int(ds.get("InstanceNumber", 0) or 0)
+        frames: list[Frame] = []
+        orientation: tuple[float, ...] = ()
+        for i in range(pixels.shape[0]):
+            fi = i if multi else None
+            offset = read_offset_ppm(ds, proto.offset, frame_index=fi)
+            position, orient = slice_geometry(ds, frame_index=fi)
+            if orientation and not np.allclose(orient, orientation, atol=_ORIENTATION_TOLERANCE):
+                raise AssemblyError("ImageOrientationPatient: differs between frames")
+            orientation = orient
+            img = pixels[i]
+            if multi:
+                cands = _candidates(ds, fi)
+                slope, icpt = _find(cands[:-1], "RescaleSlope"), _find(cands[:-1],
+                                                                       "RescaleIntercept")
+                if slope is not None:
+                    img = img * np.float32(float(slope))
+                if icpt is not None:
+                    img = img + np.float32(float(icpt))
+            frames.append(Frame(offset, position, img, (instance_number, str(sop), i),
+                                frame_number=i + 1 if multi else None))
+        iia = ds.get("ImagesInAcquisition")
+        try:
+            images = int(iia) if iia not in (None, "") else None
+        except (TypeError, ValueError):
+            images = None
+        return Prepared(series_key(str(study), str(series)), proto, str(sop), _header_only(ds),
+                        frames, orientation, rows, cols, images)
+
+    def place(self, prep: Prepared) -> Placed:
+        """Put a prepared instance's frames into its series (the only stateful step).
+
+        Returns what happened (:class:`Placed`). When the series reaches its expected count it
+        is handed to the worker at once.
+
+        Raises
+        ------
+        AssemblyError
+            The instance does not fit its series (matrix size or orientation differs);
+            nothing is changed.
+        """
+        now_wall, now = time.time(), time.monotonic()
+        with self._cond:
+            s = self._series.get(prep.key)
+            if s is None:
+                if prep.key in self._released:
+                    log.info("series %s: instance arrived after the series was released; "
+                             "ignored", prep.key)
+                    return Placed.LATE
+                proto = prep.protocol
+                expected = proto.expected_count(prep.images_in_acquisition)
+                per_slice = (proto.expected_offsets or len(proto.offset.values_ppm)
+                             or (expected if expected and expected <= 256 else 64))
+                s = _Series(prep.key, proto, prep.rows, prep.cols, prep.orientation, expected,
+                            capacity=max(per_slice, 1), first_at=now_wall)
+                self._series[prep.key] = s
+                log.info("series %s: new, protocol %s, expecting %s frames", prep.key,
+                         proto.name, expected if expected is not None else "an unknown count of")
+                new_series = True
+            else:
+                new_series = False
+            if (prep.rows, prep.cols) != (s.rows, s.cols):
+                raise AssemblyError(f"Rows/Columns: {prep.rows} x {prep.cols} differs from the "
+                                    f"series' {s.rows} x {s.cols}")
+            if not np.allclose(prep.orientation, s.orientation, atol=_ORIENTATION_TOLERANCE):
+                raise AssemblyError("ImageOrientationPatient: differs from the series'")
+            if prep.sop_instance_uid in s.sops:
+                log.info("series %s: duplicate instance ignored (first kept)", s.key)
+                return Placed.DUPLICATE
+            s.sops.add(prep.sop_instance_uid)
+            for fr in prep.frames:
+                sl = s.slice_for(fr.position_mm)
+                if sl.count == sl.stack.shape[0]:
+                    grown = np.empty((2 * sl.stack.shape[0], s.rows, s.cols), np.float32)
+                    grown[: sl.count] = sl.stack
+                    sl.stack = grown
+                sl.stack[sl.count] = fr.pixels
+                sl.offsets.append(fr.offset_ppm)
+                sl.ties.append(fr.tiebreak)
+                sl.headers.append(prep.header)
+                s.n_frames += 1
+            s.last_at = now_wall
+            if s.held:
+                log.info("series %s: held series woke up on a new instance", s.key)
+                s.held = False
+            s.deadline = now + self.config.idle_timeout_s
+            if s.expected is not None and s.n_frames >= s.expected:
+                self._on_deadline_locked(s)
+            elif new_series:
+                self._cond.notify_all()
+        return Placed.ADDED
+
+    def add(self, ds: Dataset) -> Placed:
+        """:meth:`prepare` and :meth:`place` in one call (offline use and tests)."""
+        prep = self.prepare(ds)
+        if prep is None:
+            return Placed.UNMATCHED
+        return self.place(prep)
+
+    def hint_release(self, keys: Iterable[str]) -> None:
+        """An association that delivered frames of these series was released (a hint only).
+
+        Series of unknown expected size are released ``release_grace_s`` after their last
+        frame, unless another frame arrives first; other series keep their idle timeout.
+        """
+        with self._cond:
+            changed = False
+            for key in keys:
+                s = self._series.get(key)
+                if s is not None and s.expected is None:
+                    s.released_hint = True
+                    grace = time.monotonic() + self.config.release_grace_s
+                    if grace < s.deadline:
+                        s.deadline = grace
+                        changed = True
+            if changed:
+                self._cond.notify_all()
+
+    def flush(self, *, wait: bool = True, timeout: float | None = None) -> None:
+        """Release every open series now (as at their idle timeout) and optionally wait.
+
+        Series that cannot be processed are held, as at a timeout. With ``wait``, returns
+        once ``on_complete`` has returned for every released series.
+        """
+        with self._cond:
+            for s in list(self._series.values()):
+                if not s.held:
+                    s.deadline = -math.inf
+            self._cond.notify_all()
+        if wait:
+            deadline = None if timeout is None else time.monotonic() + timeout
+            with self._cond:
+                while any(not s.held for s in self._series.values()):
+                    left = None if deadline is None else deadline - time.monotonic()
+                    if left is not None and left <= 0:
+                        raise TimeoutError("flush: series still open")
+                    self._cond.wait(left)
+            self._work.join()
+
+    def open_series(self) -> dict[str, int]:
+        """Open (receiving or held) series: key -> frames so far."""
+        with self._cond:
+            return {k: s.n_frames for k, s in self._series.items()}
+
+    # ------------------------------------------------------------------ threads
+    def _release_locked(self, s: _Series, now_wall: float) -> None:
+        del self._series[s.key]
+        self._released[s.key] = now_wall
+        while len(self._released) > 10000:
+            self._released.popitem(last=False)
+        self._work.put((s, now_wall))
+        self._cond.notify_all()
+
+    def _timer_loop(self) -> None:
+        with self._cond:
+            while not self._stopping:
+                now = time.monotonic()
+                due = [s for s in self._series.values() if not s.held and s.deadline <= now]
+                for s in due:
+                    self._on_deadline_locked(s)
+                pending = [s.deadline for s in self._series.values() if not s.held]
+                wait = (min(pending) - time.monotonic()) if pending else None
+                if wait is None or wait > 0:
+                    self._cond.wait(wait)
+
+    def _on_deadline_locked(self, s: _Series) -> None:
+        complete, missing, processable = _assess(s)
+        if complete or processable:
+            self._release_locked(s, time.time())
+            return
+        s.held = True
+        log.warning("series %s: held, cannot be processed: %s", s.key, missing)
+        self._cond.notify_all()
+        if self.on_held is not None:
+            try:
+                self.on_held(s.key, missing)
+            except Exception:
+                log.exception("series %s: on_held callback failed", s.key)
+
+    def _worker_loop(self) -> None:
+        while True:
+            item = self._work.get()
+            try:
+                if item is None:
+                    return
+                s, released_at = item
+                try:
+                    result = _finish(s, released_at)
+                except Exception:
+                    log.exception("series %s: assembly failed", s.key)
+                    continue
+                if result.complete:
+                    log.info("series %s: complete, %d frames, %d slices x %d offsets", s.key,
+                             result.instance_count, result.signal.shape[0],
+                             result.signal.shape[-1])
+                else:
+                    log.warning("series %s: released incomplete after the idle timeout: %s",
+                                s.key, result.missing)
+                try:
+                    self.on_complete(result)
+                except Exception:
+                    log.exception("series %s: on_complete failed", s.key)
+            finally:
+                self._work.task_done()
+
+
+# --------------------------------------------------------------------------- finishing
+def _clusters(values: list[float]) -> list[float]:
+    """Distinct offsets (within OFFSET_TOLERANCE_PPM), ascending."""
+    out: list[float] = []
+    for v in sorted(values):
+        if not out or v - out[-1] > OFFSET_TOLERANCE_PPM:
+            out.append(v)
+    return out
+
+
+def _cluster_index(centres: list[float], v: float) -> int:
+    i = int(np.searchsorted(centres, v - OFFSET_TOLERANCE_PPM))
+    while i < len(centres) - 1 and centres[i] < v - OFFSET_TOLERANCE_PPM:
+        i += 1
+    return min(i, len(centres) - 1)
+
+
+def _layout(s: _Series) -> tuple[list[float], list[list[int]], list[list[list[int]]]]:
+    """Distinct offsets, columns per distinct offset, and per slice the frames per offset."""
+    centres = _clusters([o for sl in s.slices for o in sl.offsets])
+    per_slice: list[list[list[int]]] = []
+    for sl in s.slices:
+        groups: list[list[int]] = [[] for _ in centres]
+        for i, o in enumerate(sl.offsets):
+            groups[_cluster_index(centres, o)].append(i)
+        for g in groups:
+            g.sort(key=sl.ties.__getitem__)  # repeats: by instance number, then UID
+        per_slice.append(groups)
+    mult = [max((len(g[c]) for g in per_slice), default=0) for c in range(len(centres))]
+    columns: list[list[int]] = []
+    col = 0
+    for m in mult:
+        columns.append(list(range(col, col + m)))
+        col += m
+    return centres, columns, per_slice
+
+
+def _assess(s: _Series) -> tuple[bool, str, bool]:
+    """(complete, missing text, processable) of an open series at its deadline."""
+    proto = s.protocol
+    centres, columns, per_slice = _layout(s)
+    order = sorted(range(len(s.slices)), key=lambda i: s.slices[i].position_mm)
+    problems: list[str] = []
+    if s.expected is not None and s.n_frames < s.expected:
+        problems.append(f"{s.n_frames} of {s.expected} expected frames")
+    holes: list[str] = []
+    for rank, i in enumerate(order):
+        lacking = [f"{centres[c]:+.3f}" for c, g in enumerate(per_slice[i])
+                   if len(g) < len(columns[c])]
+        if lacking:
+            shown = ", ".join(lacking[:6]) + (f" and {len(lacking) - 6} more" if len(lacking) > 6
+                                              else "")
+            holes.append(f"slice {rank} lacks {shown} ppm")
+    complete = not problems and not holes
+    needed: list[str] = []
+    for rank, i in enumerate(order):
+        offs = np.asarray(s.slices[i].offsets)
+        if not (np.abs(offs) >= proto.m0_threshold_ppm).any():
+            needed.append(f"slice {rank} has no M0 (|offset| >= {proto.m0_threshold_ppm:g} ppm)")
+        for req in proto.required_offsets_ppm:
+            if not (np.abs(offs - req) <= proto.required_tolerance_ppm).any():
+                needed.append(f"slice {rank} lacks required {req:+.2f} ppm")
+    processable = not needed
+    text = "; ".join(problems + holes[:5] + (["..."] if len(holes) > 5 else []) + needed[:10])
+    return complete and processable, text, processable
+
+
+def _finish(s: _Series, released_at: float) -> AssembledSeries:
+    """Order frames by offset and slices by position into an AssembledSeries."""
+    complete, missing, _ = _assess(s)
+    centres, columns, per_slice = _layout(s)
+    n_cols = sum(len(c) for c in columns)
+    order = sorted(range(len(s.slices)), key=lambda i: s.slices[i].position_mm)
+    signal = np.full((len(order), s.rows, s.cols, n_cols), np.nan, np.float32)
+    offsets = np.empty(n_cols, np.float64)
+    for c, cols in enumerate(columns):
+        offsets[cols] = centres[c]
+    sources: list[list[Dataset | None]] = []
+    references: list[Dataset] = []
+    thr = s.protocol.m0_threshold_ppm
+    for out_i, i in enumerate(order):
+        sl = s.slices[i]
+        frame_idx: list[int] = []
+        col_idx: list[int] = []
+        for c, g in enumerate(per_slice[i]):
+            frame_idx.extend(g)
+            col_idx.extend(columns[c][: len(g)])
+        # one gather per slice: (k, rows, cols) -> (rows, cols, k) into the target columns
+        signal[out_i][..., col_idx] = np.moveaxis(sl.stack[frame_idx], 0, -1)
+        row: list[Dataset | None] = [None] * n_cols
+        for fi, ci in zip(frame_idx, col_idx, strict=True):
+            row[ci] = sl.headers[fi]
+        sources.append(row)
+        m0 = [fi for fi, ci in zip(frame_idx, col_idx, strict=True) if abs(offsets[ci]) >= thr]
+        references.append(sl.headers[m0[0] if m0 else frame_idx[0]])
+    return AssembledSeries(
+        key=s.key,
+        protocol=s.protocol.name,
+        signal=signal,
+        offsets_ppm=offsets,
+        references=references,
+        sources=sources,
+        complete=complete,
+        missing="" if complete else missing,
+        clock={"first_instance": s.first_at, "last_instance": s.last_at,
+               "complete": released_at},
+        instance_count=len(s.sops),
+    )
+

@@ -1,0 +1,241 @@
+"""The node's DICOM door: a pynetdicom Storage SCP (MR, Enhanced MR) with Verification.
+
+Handlers are thin translators: DICOM in, our types out, a PS3.7 status back (PS3.4 Annex B.2.3
+C-STORE statuses):
+
+========  ==========================================================================
+0x0000    success: the instance is on disk in the spool (or belongs to no protocol
+          and was ignored, which is logged by series key only)
+0xA700    out of resources: the spool could not write it
+0xA900    data set does not match SOP class (class differs from the request, no
+          pixel data, matrix or orientation differs from its series)
+0xC000    cannot understand: unparsable data set
+0xC001    cannot understand: a header the protocol needs is missing or wrong
+========  ==========================================================================
+
+Every failure status carries an ErrorComment naming the problem (never patient data).
+
+Calling AE titles not in ``allowed_calling_aets`` are rejected at association (A-ASSOCIATE-RJ,
+"calling AE title not recognised"). TCP_NODELAY is set on every accepted socket: with Nagle's
+algorithm on, small C-STORE responses wait for delayed ACKs (measured on this machine: 1,200
+instances took 106 s instead of 1.4 s between DCMTK peers).
+"""
+
+from __future__ import annotations
+
+import logging
+import socket
+import threading
+from collections.abc import Callable
+from typing import Any
+
+from pydicom import Dataset
+from pydicom.uid import (
+    EnhancedMRImageStorage,
+    ExplicitVRLittleEndian,
+    ImplicitVRLittleEndian,
+    MRImageStorage,
+)
+from pynetdicom import AE, evt
+from pynetdicom.sop_class import Verification  # type: ignore[attr-defined]
+
+from node.assemble import Assembler, AssemblyError, Placed
+from node.config import NodeConfig
+from node.spool import Spool, SpoolError
+from node.types import AssembledSeries, series_key
+
+__all__ = [
+    "STATUS_BAD_HEADER",
+    "STATUS_CANNOT_UNDERSTAND",
+    "STATUS_OUT_OF_RESOURCES",
+    "STATUS_SOP_MISMATCH",
+    "STATUS_SUCCESS",
+    "STORAGE_CLASSES",
+    "Receiver",
+]
+
+log = logging.getLogger("cest_node.receive")
+
+STATUS_SUCCESS = 0x0000
+STATUS_OUT_OF_RESOURCES = 0xA700
+STATUS_SOP_MISMATCH = 0xA900
+STATUS_CANNOT_UNDERSTAND = 0xC000
+STATUS_BAD_HEADER = 0xC001
+
+STORAGE_CLASSES = (MRImageStorage, EnhancedMRImageStorage)
+"""SOP classes the node accepts as Storage SCP."""
+TRANSFER_SYNTAXES = (ExplicitVRLittleEndian, ImplicitVRLittleEndian)
+
+
+def _status(code: int, comment: str = "") -> Dataset:
+    ds = Dataset()
+    ds.Status = code
+    if comment:
+        ds.ErrorComment = comment[:64]  # LO: at most 64 characters
+    return ds
+
+
+class Receiver:
+    """Storage SCP in front of the spool and the assembler.
+
+    Parameters
+    ----------
+    config
+        The node config (AE title, host, port, allowlist, spool, max PDU, protocols).
+    on_complete
+        Called from the assembler's worker thread with each released
+        :class:`~node.types.AssembledSeries` (see :class:`~node.assemble.Assembler`).
+    spool
+        An existing :class:`~node.spool.Spool` (default: one at ``config.spool_dir``).
+
+    Attributes
+    ----------
+    spool, assembler
+        The spool and the assembler the handlers feed.
+    port
+        The bound TCP port once started (the OS-chosen one when ``config.port`` is 0).
+
+    Examples
+    --------
+    >>> with Receiver(cfg, on_complete=print) as rx:      # doctest: +SKIP
+    ...     print(rx.port)
+    """
+
+    def __init__(
+        self,
+        config: NodeConfig,
+        on_complete: Callable[[AssembledSeries], None],
+        *,
+        spool: Spool | None = None,
+    ):
+        self.config = config
+        self.spool = spool if spool is not None else Spool(config.spool_dir, fsync=config.fsync)
+        self._user_on_complete = on_complete
+        self.assembler = Assembler(config, self._on_complete, on_held=self._on_held)
+        self._server: Any = None
+        self._assoc_series: dict[int, set[str]] = {}
+        self._assoc_lock = threading.Lock()
+        self.port: int | None = None
+
+    # ------------------------------------------------------------------ lifecycle
+    def start(self) -> Receiver:
+        """Bind and listen (non-blocking); :attr:`port` holds the bound port."""
+        if self._server is not None:
+            return self
+        ae = AE(ae_title=self.config.ae_title)
+        ae.maximum_pdu_size = self.config.max_pdu
+        for cls in STORAGE_CLASSES:
+            ae.add_supported_context(cls, list(TRANSFER_SYNTAXES))
+        ae.add_supported_context(Verification, list(TRANSFER_SYNTAXES))
+        if self.config.allowed_calling_aets:
+            ae.require_calling_aet = list(self.config.allowed_calling_aets)
+        handlers: list[Any] = [
+            (evt.EVT_CONN_OPEN, self._on_conn_open),
+            (evt.EVT_C_STORE, self._on_store),
+            (evt.EVT_C_ECHO, self._on_echo),
+            (evt.EVT_RELEASED, self._on_assoc_end),
+            (evt.EVT_ABORTED, self._on_assoc_end),
+            (evt.EVT_REJECTED, self._on_rejected),
+        ]
+        self.assembler.start()
+        self._server = ae.start_server((self.config.host, self.config.port), block=False,
+                                       evt_handlers=handlers)
+        self.port = int(self._server.server_address[1])
+        self._ae = ae
+        log.info("listening as %s on %s:%d", self.config.ae_title, self.config.host, self.port)
+        return self
+
+    def stop(self) -> None:
+        """Stop listening, end open associations, stop the assembler, close the spool index."""
+        if self._server is not None:
+            self._server.shutdown()
+            self._server = None
+            self._ae.shutdown()
+        self.assembler.stop()
+        self.spool.close()
+
+    def __enter__(self) -> Receiver:
+        return self.start()
+
+    def __exit__(self, *exc: object) -> None:
+        self.stop()
+
+    # ------------------------------------------------------------------ handlers
+    def _on_conn_open(self, event: Any) -> None:
+        # pynetdicom 3.0 never sets TCP_NODELAY itself; the accepted socket is reachable as
+        # assoc.dul.socket.socket (an AssociationSocket wrapping the socket.socket)
+        try:
+            sock = event.assoc.dul.socket.socket
+            if sock is not None:
+                sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+        except (AttributeError, OSError) as exc:
+            log.warning("could not set TCP_NODELAY on an accepted socket: %s", exc)
+
+    def _on_echo(self, event: Any) -> int:
+        return STATUS_SUCCESS
+
+    def _on_rejected(self, event: Any) -> None:
+        log.warning("association rejected (calling AE title not on the allowlist)")
+
+    def _on_store(self, event: Any) -> Dataset | int:
+        try:
+            ds = event.dataset
+            ds.file_meta = event.file_meta
+            sop_class = str(ds.SOPClassUID)
+            sop_uid = str(ds.SOPInstanceUID)
+            study_uid, series_uid = str(ds.StudyInstanceUID), str(ds.SeriesInstanceUID)
+        except Exception as exc:  # any parse error is the peer's data, never our crash
+            log.warning("C-STORE: unparsable data set (%s)", type(exc).__name__)
+            return _status(STATUS_CANNOT_UNDERSTAND, f"unparsable data set: {type(exc).__name__}")
+        key = series_key(study_uid, series_uid)
+        if sop_class != str(event.request.AffectedSOPClassUID):
+            log.warning("series %s: SOP Class UID differs from the C-STORE request", key)
+            return _status(STATUS_SOP_MISMATCH, "SOPClassUID differs from the C-STORE request")
+        try:
+            prep = self.assembler.prepare(ds)
+        except AssemblyError as exc:
+            code = STATUS_SOP_MISMATCH if "PixelData: missing" in str(exc) else STATUS_BAD_HEADER
+            log.warning("series %s: instance refused: %s", key, exc)
+            return _status(code, str(exc))
+        except Exception as exc:
+            log.warning("series %s: instance refused, header unreadable (%s)", key,
+                        type(exc).__name__)
+            return _status(STATUS_CANNOT_UNDERSTAND, f"unreadable header: {type(exc).__name__}")
+        if prep is None:
+            log.info("series %s: matches no protocol; acknowledged and ignored", key)
+            return STATUS_SUCCESS
+        try:
+            expected = prep.protocol.expected_count(prep.images_in_acquisition)
+            self.spool.store(key, sop_uid, event.encoded_dataset(include_meta=True),
+                             protocol=prep.protocol.name, expected=expected)
+        except SpoolError as exc:
+            log.error("%s", exc)
+            return _status(STATUS_OUT_OF_RESOURCES, "cannot write the instance to the spool")
+        try:
+            placed = self.assembler.place(prep)
+        except AssemblyError as exc:
+            self.spool.discard(key, sop_uid)
+            log.warning("series %s: instance refused: %s", key, exc)
+            return _status(STATUS_SOP_MISMATCH, str(exc))
+        if placed is Placed.ADDED:
+            with self._assoc_lock:
+                self._assoc_series.setdefault(id(event.assoc), set()).add(key)
+        return STATUS_SUCCESS
+
+    def _on_assoc_end(self, event: Any) -> None:
+        with self._assoc_lock:
+            keys = self._assoc_series.pop(id(event.assoc), set())
+        if keys:
+            self.assembler.hint_release(keys)
+
+    # ------------------------------------------------------------------ assembler callbacks
+    def _on_complete(self, series: AssembledSeries) -> None:
+        state = "complete" if series.complete else "incomplete"
+        try:
+            self.spool.set_state(series.key, state, detail=series.missing)
+        except Exception:
+            log.exception("series %s: could not record state %s", series.key, state)
+        self._user_on_complete(series)
+
+    def _on_held(self, key: str, missing: str) -> None:
+        self.spool.set_state(key, "held", detail=missing)
