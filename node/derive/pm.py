@@ -59,7 +59,9 @@ def build(req: DerivedRequest) -> list[Dataset]:
     Returns
     -------
     list of Dataset
-        One multi-frame Parametric Map (frames in the order of ``req.references``).
+        One multi-frame Parametric Map. highdicom orders the frames along the slice normal
+        itself (measured: descending position for an axial stack), whatever the order of
+        ``req.references``; each frame carries its position and names its source image.
     """
     center, width = req.window
     voi = hd.VOILUTTransformation(

@@ -1,0 +1,394 @@
+"""The output builders of node.derive, checked against the DICOM standard and real tools.
+
+Sources outside the project: dciodvfy (dicom3tools) checks each object against the PS3.3
+IODs; DCMTK dcmj2pnm renders what a viewer shows; pydicom reads the files back; PS3.3
+C.11.1 (Modality LUT: value = stored x slope + intercept) and C.7.6.16.2.11 (Real World Value
+Mapping) define what the numbers mean.
+"""
+
+from __future__ import annotations
+
+import subprocess
+from pathlib import Path
+
+import numpy as np
+import pydicom
+import pytest
+from PIL import Image
+
+from node import __version__
+from node.derive import BUILDERS, DerivedRequest, output_uid
+from node.derive.concepts import PRIVATE_SCHEME
+from node.derive.mr import PADDING_VALUE, quantise, rescale_slope
+from node.derive.render import RESEARCH_BANNER, colour_lut, fuse
+from node.derive.sc import patient_orientation
+from node.synth import PRIVATE_CREATOR, PRIVATE_GROUP, series_from_arrays
+from tests.peers import PEER_ENV, assert_dciodvfy_clean, require
+
+SLICES, ROWS, COLS = 3, 24, 32  # not square, so a swap of rows and columns shows
+OFFSETS = [3.5, -300.0, -3.5]  # acquisition order; -300 ppm is M0 (our synth convention)
+TITLE = "MTRasym 3.5 ppm (B0-corrected)"
+
+
+def _offset(ds: pydicom.Dataset) -> float:
+    return float(ds.private_block(PRIVATE_GROUP, PRIVATE_CREATOR)[0x10].value)
+
+
+def make_case(slices: int = SLICES, rows: int = ROWS, cols: int = COLS, *, seed: int = 7,
+              offsets: list[float] | None = None):
+    """Source series (node.synth), per-slice M0 references, a map with NaN, the M0 images."""
+    rng = np.random.default_rng(seed)
+    offsets = offsets or OFFSETS
+    yy, xx = np.mgrid[:rows, :cols]
+    inside = ((yy - rows / 2) / (rows * 0.45)) ** 2 + ((xx - cols / 2) / (cols * 0.45)) ** 2 < 1
+    m0 = np.where(inside, 1.0, 0.03)[None].repeat(slices, 0).astype(np.float32)
+    signal = np.stack([m0 * (0.5 if abs(o) < 20 else 1.0) for o in offsets], axis=-1)
+    series = series_from_arrays(signal, offsets, seed=f"derive-test-{seed}")
+    for ds in series:
+        del ds.PixelData  # header-only, as node.assemble hands them on
+    refs = sorted((d for d in series if _offset(d) == -300.0),
+                  key=lambda d: float(d.ImagePositionPatient[2]))
+    values = (xx / cols * 8.0 - 3.0)[None].repeat(slices, 0).astype(np.float32)
+    values += rng.normal(0.0, 0.1, values.shape).astype(np.float32)
+    values[:, ~inside] = np.nan
+    return series, refs, values, m0 * 3000.0
+
+
+def make_request(kind: str = "parametric_map", method: str = "mtr_asym", **kw) -> DerivedRequest:
+    series, refs, values, m0 = make_case()
+    opts = dict(references=refs, values=values, method=method, title=TITLE, unit_ucum="%",
+                series_uid=f"1.2.826.0.1.3680043.10.1.{len(kind)}", series_number=200,
+                m0=m0, display_range=(-3.0, 5.0))
+    opts.update(kw)
+    return DerivedRequest(**opts)  # type: ignore[arg-type]
+
+
+def _write(datasets, folder: Path) -> list[Path]:
+    folder.mkdir(parents=True, exist_ok=True)
+    paths = []
+    for i, ds in enumerate(datasets):
+        p = folder / f"out{i:03d}.dcm"
+        ds.save_as(p, enforce_file_format=True)
+        paths.append(p)
+    return paths
+
+
+# ------------------------------------------------------------------ every kind
+@pytest.mark.peers
+@pytest.mark.parametrize("kind", sorted(BUILDERS))
+@pytest.mark.parametrize("method", ["mtr_asym", "apt_star"])  # a standard and a private code
+def test_every_output_passes_dciodvfy(kind, method, tmp_path):
+    # PS3.3 IODs (A.75 Parametric Map, A.4 MR Image, A.8.1 Secondary Capture) via dciodvfy
+    out = BUILDERS[kind](make_request(kind, method))
+    assert_dciodvfy_clean(_write(out, tmp_path))
+
+
+@pytest.mark.parametrize("kind", sorted(BUILDERS))
+def test_research_marks_equipment_and_links(kind, tmp_path):
+    req = make_request(kind, note="QC: B0 fit poor in 3% of voxels")
+    out = BUILDERS[kind](req)
+    back = [pydicom.dcmread(p) for p in _write(out, tmp_path)]
+    ref = req.references[0]
+    for ds in back:
+        # Content Qualification (0018,9004) = RESEARCH (PS3.3 C.8.13.2 / C.12.1)
+        assert ds.ContentQualification == "RESEARCH"
+        assert ds.SeriesDescription.startswith("RESEARCH ")
+        assert "QC: B0" in ds.SeriesDescription
+        assert len(ds.SeriesDescription) <= 64  # LO (PS3.5 Table 6.2-1)
+        assert ds.Manufacturer == "cest-node"
+        assert __version__ in str(ds.SoftwareVersions)
+        assert ds.BodyPartExamined == ref.BodyPartExamined
+        assert ds.StudyInstanceUID == ref.StudyInstanceUID
+        assert ds.PatientID == ref.PatientID
+        assert ds.SeriesInstanceUID == req.series_uid
+        assert ds.SeriesInstanceUID != ref.SeriesInstanceUID
+        if kind != "secondary_capture":  # the upscaled preview keeps no frame of reference
+            assert ds.FrameOfReferenceUID == ref.FrameOfReferenceUID
+    assert len({ds.SOPInstanceUID for ds in back}) == len(back)
+
+
+@pytest.mark.parametrize("kind", sorted(BUILDERS))
+def test_rebuild_gives_the_same_uids(kind):
+    a = [ds.SOPInstanceUID for ds in BUILDERS[kind](make_request(kind))]
+    b = [ds.SOPInstanceUID for ds in BUILDERS[kind](make_request(kind))]
+    assert a == b
+    # 2.25 form of a UUID (PS3.5 B.2): at most 64 characters, digits only after the root
+    assert all(u.startswith("2.25.") and len(u) <= 64 and u[5:].isdigit() for u in a)
+    assert a[0] == output_uid(make_request(kind).series_uid, {"parametric_map": "pm",
+                              "derived_mr": "mr", "secondary_capture": "sc"}[kind], 0)
+
+
+def test_output_uids_differ_between_series_and_kinds():
+    uids = {output_uid(s, k, i) for s in ("1.2.3", "1.2.4") for k in ("pm", "mr") for i in (0, 1)}
+    assert len(uids) == 8
+
+
+# ------------------------------------------------------------------ Parametric Map
+def _frame_sources(pm) -> list[str]:
+    """The first source SOP Instance UID of every frame, in frame order."""
+    return [f.DerivationImageSequence[0].SourceImageSequence[0].ReferencedSOPInstanceUID
+            for f in pm.PerFrameFunctionalGroupsSequence]
+
+
+def _frame_order(pm, req: DerivedRequest) -> list[int]:
+    """For each frame, the index of its slice in ``req.references`` (highdicom orders the
+    frames along the slice normal itself; each frame names its source)."""
+    index = {r.SOPInstanceUID: i for i, r in enumerate(req.references)}
+    return [index[u] for u in _frame_sources(pm)]
+
+
+def test_parametric_map_round_trip_keeps_float_values_and_nan(tmp_path):
+    req = make_request()
+    (path,) = _write(BUILDERS["parametric_map"](req), tmp_path)
+    pm = pydicom.dcmread(path)
+    assert pm.SOPClassUID == "1.2.840.10008.5.1.4.1.1.30"  # Parametric Map Storage (PS3.4)
+    assert pm.BitsAllocated == 32 and "FloatPixelData" in pm
+    arr = pm.pixel_array
+    assert arr.dtype == np.float32 and arr.shape == req.values.shape
+    order = _frame_order(pm, req)
+    assert sorted(order) == list(range(SLICES))
+    # NaN stays NaN (documented in node/derive/pm.py); assert_array_equal treats NaN as equal
+    np.testing.assert_array_equal(arr, req.values[order])
+    assert np.isnan(arr).sum() == np.isnan(req.values).sum() > 0
+
+
+def test_parametric_map_frames_follow_the_source_geometry():
+    req = make_request()
+    (pm,) = BUILDERS["parametric_map"](req)
+    shared = pm.SharedFunctionalGroupsSequence[0]
+    ref0 = req.references[0]
+    assert [float(x) for x in shared.PlaneOrientationSequence[0].ImageOrientationPatient] == [
+        float(x) for x in ref0.ImageOrientationPatient]
+    assert [float(x) for x in shared.PixelMeasuresSequence[0].PixelSpacing] == [
+        float(x) for x in ref0.PixelSpacing]
+    order = _frame_order(pm, req)
+    for frame, i in zip(pm.PerFrameFunctionalGroupsSequence, order, strict=True):
+        ref = req.references[i]
+        pos = [float(x) for x in frame.PlanePositionSequence[0].ImagePositionPatient]
+        assert pos == pytest.approx([float(x) for x in ref.ImagePositionPatient])
+        src = frame.DerivationImageSequence[0].SourceImageSequence
+        assert [s.ReferencedSOPInstanceUID for s in src] == [ref.SOPInstanceUID]
+    # frames run monotonically along the slice normal (one direction, no jumps)
+    z = [float(f.PlanePositionSequence[0].ImagePositionPatient[2])
+         for f in pm.PerFrameFunctionalGroupsSequence]
+    assert np.all(np.diff(z) < 0) or np.all(np.diff(z) > 0)
+
+
+def test_parametric_map_real_world_value_mapping_in_ucum():
+    # PS3.3 C.7.6.16.2.11: Measurement Units Code Sequence in UCUM, Quantity Definition
+    (pm,) = BUILDERS["parametric_map"](make_request())
+    rwvm = pm.SharedFunctionalGroupsSequence[0].RealWorldValueMappingSequence[0]
+    unit = rwvm.MeasurementUnitsCodeSequence[0]
+    assert (unit.CodeValue, unit.CodingSchemeDesignator) == ("%", "UCUM")
+    assert float(rwvm.RealWorldValueSlope) == 1.0 and float(rwvm.RealWorldValueIntercept) == 0.0
+    qty = rwvm.QuantityDefinitionSequence[0].ConceptCodeSequence[0]
+    # DCM 113098 "Magnetization Transfer Ratio" (PS3.16, CID 7180)
+    assert (qty.CodeValue, qty.CodingSchemeDesignator) == ("113098", "DCM")
+    assert "CodingSchemeIdentificationSequence" not in pm
+
+
+def test_private_quantity_code_declares_its_scheme():
+    # a private coding scheme is identified in the SOP Common module (PS3.3 C.12.1)
+    (pm,) = BUILDERS["parametric_map"](make_request(method="arex", unit_ucum="s-1",
+                                                     title="AREX 3.5 ppm"))
+    rwvm = pm.SharedFunctionalGroupsSequence[0].RealWorldValueMappingSequence[0]
+    qty = rwvm.QuantityDefinitionSequence[0].ConceptCodeSequence[0]
+    assert qty.CodingSchemeDesignator == PRIVATE_SCHEME and qty.CodeValue == "CN-AREX"
+    assert rwvm.MeasurementUnitsCodeSequence[0].CodeMeaning == "per second"
+    assert [x.CodingSchemeDesignator for x in pm.CodingSchemeIdentificationSequence] == [
+        PRIVATE_SCHEME]
+
+
+@pytest.mark.peers
+def test_parametric_map_with_every_source_listed(tmp_path):
+    series, refs, values, m0 = make_case()
+    others = [d for d in series if d not in refs]
+    req = DerivedRequest(references=refs, values=values, method="mtr_asym", title=TITLE,
+                         unit_ucum="%", series_uid="1.2.826.0.1.3680043.10.1.77",
+                         series_number=3, sources=others)
+    (pm,) = BUILDERS["parametric_map"](req)
+    for frame in pm.PerFrameFunctionalGroupsSequence:
+        pos = frame.PlanePositionSequence[0].ImagePositionPatient
+        (ref,) = [r for r in refs if np.allclose([float(x) for x in r.ImagePositionPatient],
+                                                 [float(x) for x in pos])]
+        listed = {s.ReferencedSOPInstanceUID
+                  for s in frame.DerivationImageSequence[0].SourceImageSequence}
+        same_slice = {d.SOPInstanceUID for d in series
+                      if d.ImagePositionPatient == ref.ImagePositionPatient}
+        assert listed == same_slice  # all saturation frames of that slice
+    assert_dciodvfy_clean(_write([pm], tmp_path))
+
+
+# ------------------------------------------------------------------ derived MR
+def test_derived_mr_values_within_one_quantisation_step(tmp_path):
+    req = make_request("derived_mr")
+    paths = _write(BUILDERS["derived_mr"](req), tmp_path)
+    for i, path in enumerate(paths):
+        ds = pydicom.dcmread(path)
+        assert list(ds.ImageType)[:2] == ["DERIVED", "SECONDARY"]
+        assert ds.SOPClassUID == "1.2.840.10008.5.1.4.1.1.4"  # MR Image Storage (PS3.4)
+        stored = ds.pixel_array
+        assert stored.dtype == np.int16
+        slope, icpt = float(ds.RescaleSlope), float(ds.RescaleIntercept)
+        value = stored * slope + icpt  # PS3.3 C.11.1.1.2 Modality LUT
+        valid = np.isfinite(req.values[i])
+        assert np.all(np.abs(value[valid] - req.values[i][valid]) <= slope / 2 + 1e-9)
+        assert np.all(stored[~valid] == PADDING_VALUE) and ds.PixelPaddingValue == PADDING_VALUE
+        assert np.all(stored[valid] != PADDING_VALUE)
+        # the Real World Value Mapping says the same as the rescale, in UCUM
+        rwvm = ds.RealWorldValueMappingSequence[0]
+        assert float(rwvm.RealWorldValueSlope) == slope
+        assert rwvm.MeasurementUnitsCodeSequence[0].CodeValue == "%"
+        # window from the display range (PS3.3 C.11.2.1.2: centre and width)
+        assert float(ds.WindowCenter) == pytest.approx(1.0)
+        assert float(ds.WindowWidth) == pytest.approx(8.0)
+        ref = req.references[i]
+        assert ds.SourceImageSequence[0].ReferencedSOPInstanceUID == ref.SOPInstanceUID
+        assert ds.ImagePositionPatient == ref.ImagePositionPatient
+        assert ds.ImageOrientationPatient == ref.ImageOrientationPatient
+        assert ds.PixelSpacing == ref.PixelSpacing
+        assert (ds.Rows, ds.Columns) == (ROWS, COLS)
+
+
+@pytest.mark.parametrize("peak", [0.003, 1.0, 7.3, 250.0, 4.0e4])
+def test_rescale_slope_fits_and_is_a_round_step(peak):
+    rng = np.random.default_rng(3)
+    values = (rng.uniform(-1.0, 1.0, (2, 5, 5)) * peak).astype(np.float32)
+    values[0, 0, 0] = np.float32(peak)
+    slope = rescale_slope(values, (-peak / 2, peak / 2))
+    mant = slope / 10.0 ** np.floor(np.log10(slope))
+    assert round(mant, 6) in (1.0, 2.0, 2.5, 5.0)
+    q = quantise(values, slope)
+    assert np.all(np.abs(q * slope - values) <= slope / 2 * (1 + 1e-6))
+    assert slope / 2.5 * 32767 < peak <= slope * 32767 * (1 + 1e-9)  # smallest such step
+
+
+def test_rescale_slope_of_an_all_nan_map():
+    values = np.full((1, 2, 2), np.nan, dtype=np.float32)
+    assert rescale_slope(values, (0.0, 0.0)) == 1.0
+    assert np.all(quantise(values, 1.0) == PADDING_VALUE)
+
+
+# ------------------------------------------------------------------ Secondary Capture
+@pytest.mark.peers
+def test_secondary_capture_renders_with_dcmj2pnm(tmp_path):
+    req = make_request("secondary_capture")
+    out = BUILDERS["secondary_capture"](req)
+    assert len(out) == SLICES
+    paths = _write(out, tmp_path / "sc")
+    exe = require("dcmj2pnm")
+    png = tmp_path / "slice1.png"
+    # +on: PNG output, -il: not interlaced, +Wm: min-max window (DCMTK dcmj2pnm options)
+    res = subprocess.run([exe, "+on", "-il", "+Wm", str(paths[0]), str(png)],
+                         capture_output=True, text=True, timeout=60, env=PEER_ENV)
+    assert res.returncode == 0, res.stderr
+    im = np.asarray(Image.open(png).convert("RGB"))
+    ds = pydicom.dcmread(paths[0])
+    assert im.shape == (ds.Rows, ds.Columns, 3)
+    assert max(ds.Rows, ds.Columns) >= 512  # upscaled so the text is readable
+    np.testing.assert_array_equal(im, ds.pixel_array)  # what a viewer shows is what we drew
+    # the research banner (yellow text) is burned into the bottom band
+    band = im[-30:]
+    assert np.sum((band[..., 0] > 200) & (band[..., 1] > 150) & (band[..., 2] < 120)) > 200
+
+
+def test_secondary_capture_attributes():
+    req = make_request("secondary_capture")
+    for i, ds in enumerate(BUILDERS["secondary_capture"](req)):
+        assert ds.SOPClassUID == "1.2.840.10008.5.1.4.1.1.7"  # SC Image Storage (PS3.4)
+        assert ds.PhotometricInterpretation == "RGB" and ds.SamplesPerPixel == 3
+        assert ds.BurnedInAnnotation == "YES"
+        assert ds.InstanceNumber == i + 1
+        assert list(ds.PatientOrientation) == ["L", "P"]  # axial source, PS3.3 C.7.6.1.1.1
+        assert ds.SourceImageSequence[0].ReferencedSOPInstanceUID == req.references[i].SOPInstanceUID
+        assert "Research use only" in ds.ImageComments
+
+
+def test_secondary_capture_colours_follow_the_map():
+    req = make_request("secondary_capture")
+    (ds, *_) = BUILDERS["secondary_capture"](req)
+    img = ds.pixel_array
+    # find the map region (image starts below the title band; 512 / 32 = 16x upscaling)
+    scale = -(-512 // max(ROWS, COLS))
+    top = next(y for y in range(img.shape[0]) if img[y, scale * COLS // 2].max() > 60
+               and abs(int(img[y, scale * COLS // 2, 0]) - int(img[y, scale * COLS // 2, 2])) > 10)
+    row = top + scale * ROWS // 2 - scale * 2
+    left = img[row, scale * 6].astype(float)    # low value (map rises with column)
+    right = img[row, scale * (COLS - 6)].astype(float)
+    luma = np.array([0.299, 0.587, 0.114])  # ITU-R BT.601 luma weights
+    assert right @ luma > left @ luma + 40
+
+
+def test_patient_orientation_of_sagittal_and_coronal():
+    ds = pydicom.Dataset()
+    ds.ImageOrientationPatient = [0, 1, 0, 0, 0, -1]  # sagittal: rows to P, columns to F
+    assert patient_orientation(ds) == ("P", "F")
+    ds.ImageOrientationPatient = [1, 0, 0, 0, 0, -1]  # coronal
+    assert patient_orientation(ds) == ("L", "F")
+
+
+def test_colour_ramp_luminance_rises_monotonically():
+    # our design rule (common practice for sequential maps); BT.601 luma weights
+    lut = colour_lut().astype(float)
+    luma = lut @ np.array([0.299, 0.587, 0.114])
+    assert np.all(np.diff(luma) > 0)
+
+
+def test_fuse_leaves_invalid_voxels_grey():
+    values = np.array([[np.nan, 0.0, 10.0]], dtype=np.float32)
+    m0 = np.full((1, 3), 50.0, dtype=np.float32)
+    rgb = fuse(values, m0, display_range=(0.0, 10.0), m0_range=(0.0, 100.0), alpha=0.5)
+    assert rgb[0, 0].tolist() == [128, 128, 128]  # round(50 / 100 * 255)
+    lut = colour_lut()
+    expect_lo = np.rint(0.5 * 127.5 + 0.5 * lut[0].astype(float))
+    expect_hi = np.rint(0.5 * 127.5 + 0.5 * lut[255].astype(float))
+    assert rgb[0, 1].tolist() == expect_lo.tolist() and rgb[0, 2].tolist() == expect_hi.tolist()
+
+
+def test_banner_text_is_the_required_sentence():
+    assert RESEARCH_BANNER == "RESEARCH USE ONLY \u2014 NOT FOR DIAGNOSIS"
+
+
+# ------------------------------------------------------------------ bad input
+@pytest.mark.parametrize(
+    ("change", "match"),
+    [
+        ({"references": []}, "references is empty"),
+        ({"values": np.zeros((SLICES, ROWS), np.float32)}, r"must be \(slices, rows, cols\)"),
+        ({"values": np.zeros((SLICES, ROWS, COLS), np.int16)}, "must be a float array"),
+        ({"values": np.full((SLICES, ROWS, COLS), np.inf, np.float32)}, "infinite"),
+        ({"values": np.zeros((SLICES + 1, ROWS, COLS), np.float32)}, "4 slices but references has 3"),
+        ({"values": np.zeros((SLICES, COLS, ROWS), np.float32)}, "references\\[0\\] is 24 x 32"),
+        ({"series_uid": "1.2.abc"}, "series_uid is not a valid DICOM UID"),
+        ({"series_uid": "1." + "2" * 70}, "series_uid is not a valid DICOM UID"),
+        ({"series_number": 0}, "series_number must be a positive integer"),
+        ({"display_range": (5.0, 5.0)}, "display_range must be finite with high > low"),
+        ({"display_range": (0.0, float("nan"))}, "display_range must be finite"),
+        ({"m0": np.zeros((1, ROWS, COLS), np.float32)}, "m0 has shape"),
+        ({"title": "MTR\u00e4sym"}, "title must be printable ASCII"),
+        ({"unit_ucum": ""}, "unit_ucum is empty"),
+        ({"method": ""}, "method is empty"),
+    ],
+)
+def test_bad_requests_are_refused(change, match):
+    with pytest.raises(ValueError, match=match):
+        make_request(**change)
+
+
+def test_reference_without_geometry_is_refused():
+    _, refs, values, _ = make_case()
+    del refs[1].ImagePositionPatient
+    with pytest.raises(ValueError, match=r"references\[1\] lacks ImagePositionPatient"):
+        DerivedRequest(references=refs, values=values, method="mtr_asym", title=TITLE,
+                       unit_ucum="%", series_uid="1.2.3", series_number=1)
+
+
+def test_secondary_capture_needs_m0():
+    with pytest.raises(ValueError, match="needs m0 images"):
+        BUILDERS["secondary_capture"](make_request("secondary_capture", m0=None))
+
+
+def test_default_display_range_is_robust():
+    req = make_request(display_range=None)
+    finite = req.values[np.isfinite(req.values)]
+    assert req.display_range == pytest.approx(tuple(np.percentile(finite, [2.0, 98.0])))
