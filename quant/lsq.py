@@ -143,7 +143,7 @@ def least_squares_batch(
     xtol: float = 1e-8,
     gtol: float = 1e-8,
     lambda0: float = 1e-3,
-    block_size: int = 4096,
+    block_size: int = 1024,
 ) -> LsqResult:
     """Fit ``V`` independent least-squares problems at once by Levenberg-Marquardt.
 
@@ -255,7 +255,7 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
                 )
             jt = np.swapaxes(j_upd, 1, 2)
             jtj[upd] = jt @ j_upd
-            grad[upd] = np.einsum("vpm,vm->vp", jt, r[upd])
+            grad[upd] = (jt @ r[upd][:, :, None])[:, :, 0]
             dscale[upd] = np.maximum(dscale[upd], np.einsum("vpp->vp", jtj[upd]))
             need_jac[upd] = False
 
@@ -273,23 +273,52 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
             if act.size == 0:
                 break
 
+        n_act = act.size
         d = np.maximum(dscale[act], 1e-12 * np.maximum(dscale[act].max(axis=1, keepdims=True), 1.0))
-        a = jtj[act] + lam[act, None, None] * (d[:, :, None] * eye)
-        keep = ~frozen
-        mask2 = keep[:, :, None] & keep[:, None, :]
-        a = np.where(mask2, a, 0.0) + np.where(frozen[:, :, None], eye, 0.0)
+        a = jtj[act]  # a copy (fancy indexing)
+        diag = a.reshape(n_act, -1)[:, :: n_par + 1]  # a view of the diagonals
+        diag += lam[act, None] * d
+        a_damped = a.copy()
+        fz = np.flatnonzero(frozen.any(axis=1))
+        if fz.size:  # frozen parameters: identity rows and columns, zero step
+            keep = (~frozen[fz]).astype(np.float64)
+            a[fz] *= keep[:, :, None] * keep[:, None, :]
+            a[fz] += frozen[fz][:, :, None] * eye
         try:
             step = np.linalg.solve(a, -g_free[:, :, None])[:, :, 0]
         except np.linalg.LinAlgError:
             step = _solve_safe(a, -g_free)
         step[~np.isfinite(step)] = 0.0
+        # a step that crosses a bound: hold those parameters on the bound they cross and
+        # re-solve for the others (a few passes), instead of clipping a correlated step
+        fixed = frozen.copy()
+        for _pass in range(3):
+            trial = pa + step
+            crossing = ((trial < lo) | (trial > hi)) & ~fixed
+            cz = np.flatnonzero(crossing.any(axis=1))
+            if cz.size == 0:
+                break
+            dc = np.where(crossing[cz], np.clip(trial[cz], lo, hi) - pa[cz], 0.0)
+            held = np.where(fixed[cz], step[cz], 0.0) + dc  # steps of all held parameters
+            a_c = a_damped[cz]
+            rhs = -g_free[cz] - (a_c @ held[:, :, None])[:, :, 0]
+            fixed[cz] |= crossing[cz]
+            keep = (~fixed[cz]).astype(np.float64)
+            a_c *= keep[:, :, None] * keep[:, None, :]
+            a_c += fixed[cz][:, :, None] * eye
+            rhs = np.where(fixed[cz], held, rhs)
+            try:
+                step[cz] = np.linalg.solve(a_c, rhs[:, :, None])[:, :, 0]
+            except np.linalg.LinAlgError:
+                step[cz] = _solve_safe(a_c, rhs)
+            step[~np.isfinite(step)] = 0.0
         p_new = np.clip(pa + step, lo, hi)
         delta = p_new - pa
         r_new = np.asarray(fun(p_new, index[act]), dtype=np.float64)
         cost_new = 0.5 * np.einsum("vm,vm->v", r_new, r_new)
         cost_new[~np.isfinite(cost_new)] = np.inf
         # predicted reduction of the linear model: -(g.d + 0.5 d^T JtJ d)
-        jd = np.einsum("vpq,vq->vp", jtj[act], delta)
+        jd = (jtj[act] @ delta[:, :, None])[:, :, 0]
         pred = -(np.einsum("vp,vp->v", ga, delta) + 0.5 * np.einsum("vp,vp->v", delta, jd))
         actual = cost[act] - cost_new
         with np.errstate(divide="ignore", invalid="ignore"):

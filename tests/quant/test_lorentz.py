@@ -1,0 +1,167 @@
+"""Lorentzian fits on spectra built from known Lorentzians (the line shape is the published
+multi-Lorentzian form, Zaiss et al., J Magn Reson 2011, from memory)."""
+
+import doctest
+
+import numpy as np
+import pytest
+
+import quant.lorentz as lorentz
+from quant.lorentz import (
+    FLAG_AT_BOUND,
+    FLAG_INVALID_INPUT,
+    POOLS_5,
+    lda,
+    lorentzian,
+    multi_lorentzian,
+    z_model,
+)
+
+X = np.linspace(-6.0, 6.0, 61)
+# baseline, then (amplitude, FWHM ppm, position ppm) for water, amide, amine, NOE, MT;
+# solute positions relative to water
+TRUE = np.array(
+    [1.0, 0.8, 1.5, 0.1, 0.03, 0.8, 3.5, 0.01, 1.5, 2.0, 0.03, 3.0, -3.5, 0.1, 25.0, -2.5]
+)
+
+
+def _known_params():
+    p = np.tile(TRUE, (2, 3, 1))
+    p[..., 4] = np.array([[0.01, 0.02, 0.03], [0.04, 0.05, 0.035]])  # amide amplitude
+    p[..., 3] = np.array([[-0.3, 0.0, 0.2], [0.1, -0.1, 0.3]])  # water shift
+    p[..., 1] = np.array([[0.75, 0.8, 0.85], [0.8, 0.7, 0.9]])
+    return p
+
+
+def test_lorentzian_is_half_at_half_width():
+    # definition of the FWHM: L(d +- w/2) = A / 2
+    v = lorentzian(np.array([2.0 - 0.4, 2.0, 2.0 + 0.4]), 0.3, 0.8, 2.0)
+    np.testing.assert_allclose(v, [0.15, 0.3, 0.15])
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_multi_lorentzian_recovers_known_pools(dtype):
+    p = _known_params()
+    z = z_model(X, p).astype(dtype)
+    res = multi_lorentzian(z, X)
+    assert res.map.dtype == dtype and res.map.shape == (2, 3)
+    assert res.converged.all()
+    tol_amp = 1e-4 if dtype == np.float64 else 2e-3  # float32 input rounds Z to ~6e-8
+    # stated tolerances: amplitudes 1e-4 (abs), water shift 1e-4 ppm, widths 1e-2 ppm
+    np.testing.assert_allclose(res.map, p[..., 4], atol=tol_amp)
+    np.testing.assert_allclose(res.water_shift_ppm, p[..., 3], atol=100 * tol_amp)
+    np.testing.assert_allclose(res.amplitude["water"], p[..., 1], atol=tol_amp)
+    np.testing.assert_allclose(res.amplitude["noe"], p[..., 10], atol=10 * tol_amp)
+    np.testing.assert_allclose(res.width_ppm["amide"], p[..., 5], atol=100 * tol_amp)
+    np.testing.assert_allclose(res.position_ppm["amide"], p[..., 3] + 3.5, atol=100 * tol_amp)
+    if dtype == np.float64:
+        assert np.all(res.rms < 1e-6)
+        assert np.all(res.flags == 0)
+
+
+def test_offsets_may_be_unsorted_and_repeated():
+    p = _known_params()[0, :1]
+    order = np.random.default_rng(3).permutation(X.size)
+    x = np.concatenate([X[order], X[:5]])
+    z = z_model(x, p)
+    res = multi_lorentzian(z, x)
+    np.testing.assert_allclose(res.map, p[..., 4], atol=1e-4)
+
+
+def test_missing_amide_rests_on_its_bound_and_is_flagged():
+    p = TRUE.copy()
+    p[4] = 0.0
+    res = multi_lorentzian(z_model(X, p)[None], X)
+    assert res.map[0] == pytest.approx(0.0, abs=1e-6)
+    assert res.flags[0] & FLAG_AT_BOUND  # reported, not silently clipped
+
+
+def test_nan_voxel_is_nan_with_reason_and_the_rest_fit():
+    z = z_model(X, _known_params())
+    z[0, 1, 7] = np.nan
+    res = multi_lorentzian(z, X)
+    assert np.isnan(res.map[0, 1]) and res.flags[0, 1] & FLAG_INVALID_INPUT
+    ok = np.ones((2, 3), bool)
+    ok[0, 1] = False
+    assert np.all(np.isfinite(res.map[ok])) and res.converged[ok].all()
+
+
+def test_neighbourhood_init_fits_each_voxel_on_its_own():
+    rng = np.random.default_rng(11)
+    p = np.tile(TRUE, (6, 6, 1))
+    p[..., 4] = rng.uniform(0.01, 0.05, (6, 6))
+    z = z_model(X, p)
+    res = multi_lorentzian(z, X, init="neighbourhood")
+    np.testing.assert_allclose(res.map, p[..., 4], atol=1e-4)
+    with pytest.raises(ValueError, match="needs at least two spatial axes"):
+        multi_lorentzian(z[0], X, init="neighbourhood")
+    with pytest.raises(ValueError, match="init must be 'table' or 'neighbourhood'"):
+        multi_lorentzian(z, X, init="smooth")
+
+
+def test_multi_lorentzian_bad_input_names_the_problem():
+    z = z_model(X, TRUE)[None]
+    with pytest.raises(ValueError, match="too few offsets for the multi-Lorentzian fit"):
+        multi_lorentzian(z[:, ::5], X[::5])
+    narrow = np.linspace(-3, 3, 40)
+    with pytest.raises(ValueError, match="offsets do not cover the amide pool"):
+        multi_lorentzian(z_model(narrow, TRUE)[None], narrow)
+    with pytest.raises(ValueError, match=r"z must be shaped \(\.\.\., n_offsets\)"):
+        multi_lorentzian(z[:, :-1], X)
+    with pytest.raises(ValueError, match="apt_pool 'glucose' is not one of the pools"):
+        multi_lorentzian(z, X, apt_pool="glucose")
+    with pytest.raises(ValueError, match="the first pool must be 'water'"):
+        multi_lorentzian(z, X, pools=POOLS_5[1:])
+    with pytest.raises(ValueError, match="amplitude start 2 must lie in"):
+        lorentz.Pool("bad", (2, 0, 1), (1, 0.5, 2), (0, -1, 1))
+
+
+# offsets of an LDA protocol: dense around the solutes, a few far ones for water and MT
+X_LDA = np.concatenate([[-15.0, -12.0, -9.0, -7.0], np.linspace(-6, 6, 49), [7.0, 9.0, 12.0, 15.0]])
+
+
+def test_lda_gives_the_amide_lorentzian_of_a_water_mt_amide_spectrum():
+    # Z = c - L_water - L_MT - L_amide: the reference fit sees water + MT only (plus the amide
+    # tails outside the band), so LD(3.5) is the amide Lorentzian at 3.5 ppm to within those
+    # tails: stated tolerance 1.5e-3 for a 0.5 ppm wide amide line.
+    amide = np.array([0.01, 0.03, 0.05])
+    z = (
+        1.0
+        - lorentzian(X_LDA, 0.8, 1.5, 0.0)
+        - lorentzian(X_LDA, 0.1, 25.0, -2.5)
+        - lorentzian(X_LDA, amide, 0.5, 3.5)
+    )
+    res = lda(z, X_LDA)
+    assert res.map.shape == (3,) and res.converged.all()
+    np.testing.assert_allclose(res.map, amide, atol=1.5e-3)
+    np.testing.assert_allclose(res.water_amplitude, 0.8, atol=5e-3)
+    assert res.z_ref.shape == z.shape and not res.fit_mask[(np.abs(X_LDA) > 1.5) & (np.abs(X_LDA) < 4.5)].any()
+
+
+def test_lda_without_solutes_is_zero_and_float32_stays_float32():
+    z = (1.0 - lorentzian(X_LDA, 0.8, 1.5, 0.2) - lorentzian(X_LDA, 0.1, 25.0, -2.5)).astype(
+        np.float32
+    )
+    res = lda(np.stack([z, z]), X_LDA)
+    assert res.map.dtype == np.float32
+    np.testing.assert_allclose(res.map, 0.0, atol=2e-4)
+    np.testing.assert_allclose(res.water_shift_ppm, 0.2, atol=2e-3)
+
+
+def test_lda_bad_input_names_the_problem():
+    z = 1.0 - lorentzian(X_LDA, 0.8, 1.5, 0.0)
+    inside = np.abs(X_LDA) <= 5.0
+    with pytest.raises(ValueError, match="offsets do not cover the MT pool"):
+        lda(z[None, inside], X_LDA[inside])
+    with pytest.raises(ValueError, match="exclude_ppm must be"):
+        lda(z[None], X_LDA, exclude_ppm=(5.0, 1.0))
+    with pytest.raises(ValueError, match="too few offsets outside the excluded band"):
+        lda(z[None], X_LDA, exclude_ppm=(0.0, 14.0), mt=False)
+    with pytest.raises(ValueError, match="lies outside the measured offsets"):
+        lda(z[None], X_LDA, at_ppm=20.0)
+    res = lda(np.where(np.arange(X_LDA.size) == 3, np.nan, z)[None], X_LDA)
+    assert np.isnan(res.map[0]) and res.flags[0] & FLAG_INVALID_INPUT
+
+
+def test_docstring_examples_run():
+    assert doctest.testmod(lorentz, raise_on_error=False).failed == 0
