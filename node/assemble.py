@@ -568,6 +568,7 @@ class Assembler:
             if s.held:
                 log.info("series %s: held series woke up on a new instance", s.key)
                 s.held = False
+                new_series = True  # the timer may be waiting for nothing: wake it
             s.deadline = now + self.config.idle_timeout_s
             if s.expected is not None and s.n_frames >= s.expected:
                 self._on_deadline_locked(s)
