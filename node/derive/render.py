@@ -195,9 +195,10 @@ class SliceRenderer:
                label: str = "") -> np.ndarray:
         """The preview of one slice, ``(height, width, 3)`` uint8."""
         fused = fuse(values, m0, display_range=self.display_range, m0_range=m0_range)
-        big = np.repeat(np.repeat(fused, self.scale, axis=0), self.scale, axis=1)
         canvas = self._canvas.copy()
-        canvas[self.top:self.top + self.img_h, :self.img_w] = big
+        k = self.scale  # nearest-neighbour upscaling by broadcasting into a (r, k, c, k) view
+        view = canvas[self.top:self.top + self.img_h, :self.img_w]
+        view.reshape(self.rows, k, self.cols, k, 3)[...] = fused[:, None, :, None, :]
         if label:
             w = self.panel + int(self.img_w * 0.25)
             band = Image.fromarray(canvas[:self.top, self.width - w:])
