@@ -16,7 +16,6 @@ Everything here is invented: the patient is a phantom, the site does not exist.
 from __future__ import annotations
 
 import datetime as _dt
-import uuid
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -26,6 +25,7 @@ from pydicom.dataset import FileMetaDataset
 from pydicom.uid import ExplicitVRLittleEndian, MRImageStorage
 
 from node import __version__
+from node.types import uid_from
 
 PRIVATE_GROUP = 0x0029
 PRIVATE_CREATOR = "CESTNODE SIM 1"
@@ -34,14 +34,6 @@ M0_OFFSET_PPM = -300.0
 SERIES_DESCRIPTION = "CEST APT phantom"
 PROTOCOL_NAME = "cest_apt_3T"
 GAMMA_MHZ_PER_T = 42.577478  # CODATA 2018 proton gyromagnetic ratio / 2 pi
-
-_UID_NAMESPACE = uuid.UUID("6f1d2c1e-6b58-4a55-9d0e-6b0b6c3e2a11")  # ours, random once
-
-
-def uid_from(*parts: object) -> str:
-    """A deterministic UID in the 2.25 form (PS3.5 B.2) from a UUID5 of the parts."""
-    return "2.25." + str(uuid.uuid5(_UID_NAMESPACE, "/".join(str(p) for p in parts)).int)
-
 
 def series_from_arrays(
     signal: np.ndarray,
@@ -152,6 +144,8 @@ def series_from_arrays(
             ds.SeriesNumber = series_number
             ds.AcquisitionNumber = k + 1
             ds.InstanceNumber = instance
+            # every frame of the series belongs to one acquisition: lets a node see completion
+            ds.ImagesInAcquisition = n_off * n_slices
             z = (s - (n_slices - 1) / 2.0) * slice_thickness_mm
             ds.ImagePositionPatient = [
                 f"{-cols * pixel_spacing_mm / 2:.3f}",

@@ -7,6 +7,7 @@ They hold no DICOM networking and no I/O. A series travels down the chain as an
 from __future__ import annotations
 
 import hashlib
+import uuid
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
@@ -14,6 +15,14 @@ import numpy as np
 
 if TYPE_CHECKING:
     from pydicom import Dataset
+
+
+_UID_NAMESPACE = uuid.UUID("6f1d2c1e-6b58-4a55-9d0e-6b0b6c3e2a11")  # ours, drawn once
+
+
+def uid_from(*parts: object) -> str:
+    """A deterministic UID in the 2.25 form (PS3.5 B.2) from a UUID5 of the parts."""
+    return "2.25." + str(uuid.uuid5(_UID_NAMESPACE, "/".join(str(p) for p in parts)).int)
 
 
 def series_key(study_uid: str, series_uid: str) -> str:
