@@ -392,3 +392,25 @@ def test_default_display_range_is_robust():
     req = make_request(display_range=None)
     finite = req.values[np.isfinite(req.values)]
     assert req.display_range == pytest.approx(tuple(np.percentile(finite, [2.0, 98.0])))
+
+
+@pytest.mark.peers
+@pytest.mark.parametrize("kind", sorted(BUILDERS))
+def test_all_invalid_map_still_builds_valid_objects(kind, tmp_path):
+    req = make_request(kind, values=np.full((SLICES, ROWS, COLS), np.nan, np.float32),
+                       display_range=None)
+    assert_dciodvfy_clean(_write(BUILDERS[kind](req), tmp_path))
+
+
+@pytest.mark.parametrize("kind", sorted(BUILDERS))
+def test_latin1_patient_name_round_trips(kind, tmp_path):
+    # synth sources declare ISO_IR 100 (PS3.3 C.12.1.1.2); the outputs keep that character set
+    series, refs, values, m0 = make_case()
+    for ds in refs:
+        ds.PatientName = "PHANT\u00d6M^J\u00f6rg"  # invented
+    req = DerivedRequest(references=refs, values=values, method="mtr_asym", title=TITLE,
+                         unit_ucum="%", series_uid="1.2.826.0.1.3680043.10.1.5",
+                         series_number=5, m0=m0)
+    back = [pydicom.dcmread(p) for p in _write(BUILDERS[kind](req), tmp_path)]
+    assert all(str(ds.PatientName) == "PHANT\u00d6M^J\u00f6rg" for ds in back)
+    assert all(ds.SpecificCharacterSet == "ISO_IR 100" for ds in back)
