@@ -29,7 +29,7 @@ from pydicom.errors import InvalidDicomError
 from pynetdicom import AE, AllStoragePresentationContexts, evt
 from pynetdicom.sop_class import Verification  # type: ignore[attr-defined]
 
-from node.send import set_tcp_nodelay
+from node.send import set_tcp_nodelay, tcp_nodelay_of
 from node.types import series_key
 
 if TYPE_CHECKING:
@@ -90,6 +90,7 @@ class EmbeddedArchive:
         self._by_series: Counter[str] = Counter()  # distinct instances per series key
         self._files: dict[str, Path] = {}  # SOP Instance UID -> file
         self._failures = 0
+        self._nodelay: list[bool | None] = []  # TCP_NODELAY read back on each connection
         self._server: ThreadedAssociationServer | None = None
         self._port = 0
 
@@ -106,7 +107,7 @@ class EmbeddedArchive:
         ae.supported_contexts = AllStoragePresentationContexts
         ae.add_supported_context(Verification)
         handlers: list[Any] = [
-            (evt.EVT_CONN_OPEN, set_tcp_nodelay),
+            (evt.EVT_CONN_OPEN, self._on_conn_open),
             (evt.EVT_C_STORE, self._on_store),
             (evt.EVT_C_ECHO, lambda event: SUCCESS),
         ]
@@ -182,7 +183,19 @@ class EmbeddedArchive:
         with self._cond:
             return self._cond.wait_for(enough, timeout=timeout_s)
 
-    # -- handler ----------------------------------------------------------------------------
+    @property
+    def connections_nodelay(self) -> list[bool | None]:
+        """TCP_NODELAY as read back from each accepted connection's socket."""
+        with self._cond:
+            return list(self._nodelay)
+
+    # -- handlers ---------------------------------------------------------------------------
+    def _on_conn_open(self, event: evt.Event) -> None:
+        set_tcp_nodelay(event)
+        state = tcp_nodelay_of(event.assoc)
+        with self._cond:
+            self._nodelay.append(state)
+
     def _on_store(self, event: evt.Event) -> int:
         try:
             raw = event.encoded_dataset(include_meta=True)

@@ -522,7 +522,9 @@ class Sender:
                 break
         report.elapsed_ms = (time.perf_counter() - t0) * 1000.0
         for i in pending:
-            if not items[i].detail:
+            if items[i].status is not None:
+                items[i].outcome = FAILED  # refused with a transient status every time
+            elif not items[i].detail:
                 items[i].detail = "not acknowledged"
         self._log(report)
         return report

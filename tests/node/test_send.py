@@ -307,11 +307,14 @@ def test_echo_against_storescp(storescp: StoreSCP) -> None:
 # --------------------------------------------------------------------------- recovery
 class StallingSCP:
     """A real pynetdicom Storage SCP that, the first time it sees instance ``stall_uid``,
-    holds its response for ``stall_s`` (longer than the sender's DIMSE timeout)."""
+    holds its response for ``stall_s`` (longer than the sender's DIMSE timeout), and answers
+    ``statuses[uid]`` (default 0x0000)."""
 
-    def __init__(self, stall_uid: str, stall_s: float) -> None:
+    def __init__(self, stall_uid: str = "", stall_s: float = 0.0,
+                 statuses: dict[str, int] | None = None) -> None:
         self.stall_uid = stall_uid
         self.stall_s = stall_s
+        self.statuses = statuses or {}
         self.seen: list[str] = []
         self._release = threading.Event()
         self._lock = threading.Lock()
@@ -335,7 +338,22 @@ class StallingSCP:
             self.seen.append(uid)
         if uid == self.stall_uid and first:
             self._release.wait(self.stall_s)
-        return 0x0000
+        return self.statuses.get(uid, 0x0000)
+
+
+@pytest.mark.peers
+def test_warning_and_failure_statuses_are_reported() -> None:
+    # PS3.7 C.4.2.1.4: 0xB007 "data set does not match SOP class" is a warning (stored);
+    # 0xA900 is a failure of the same meaning (not stored, not retried: it would fail again).
+    batch = mr_batch()
+    statuses = {str(batch[1].SOPInstanceUID): 0xB007, str(batch[2].SOPInstanceUID): 0xA900}
+    with StallingSCP(statuses=statuses) as scp:
+        report = Sender(fast_settings()).send(batch, ("STALLER", "127.0.0.1", scp.port))
+    assert (report.sent, report.warnings, report.failed) == (len(batch) - 1, 1, 1)
+    assert report.items[1].outcome == WARNING and report.items[1].status == 0xB007
+    assert "does not match SOP class" in report.items[1].detail
+    assert report.items[2].outcome == FAILED and report.items[2].status == 0xA900
+    assert report.items[2].attempts == 1 and len(report.attempts) == 1
 
 
 @pytest.mark.peers
