@@ -771,9 +771,8 @@ def echo(
     ae.network_timeout = timeout_s
     ae.add_requested_context(Verification)
     t0 = time.perf_counter()
-    assoc = ae.associate(
-        dest.host, dest.port, ae_title=dest.ae_title, evt_handlers=[(evt.EVT_CONN_OPEN, set_tcp_nodelay)]
-    )
+    handlers: list[Any] = [(evt.EVT_CONN_OPEN, set_tcp_nodelay), (evt.EVT_CONN_OPEN, guard_reactor_race)]
+    assoc = ae.associate(dest.host, dest.port, ae_title=dest.ae_title, evt_handlers=handlers)
     try:
         if not assoc.is_established:
             why = "rejected" if assoc.is_rejected else "aborted" if assoc.is_aborted else "no connection"
