@@ -81,9 +81,14 @@ _UNCOMPRESSED = {ExplicitVRLittleEndian, ImplicitVRLittleEndian, UID("1.2.840.10
 class DestinationLike(Protocol):
     """Anything with the three fields of a DICOM destination (e.g. node.config's)."""
 
-    ae_title: str
-    host: str
-    port: int
+    @property
+    def ae_title(self) -> str: ...
+
+    @property
+    def host(self) -> str: ...
+
+    @property
+    def port(self) -> int: ...
 
 
 @dataclass(frozen=True)
