@@ -1,1 +1,42 @@
-"""Pure numerics of cest-node (being written; see DEVELOPERS.md for the contract)."""
+"""Pure numerics of cest-node: Z-spectra, B0 correction, APT measures, fits, simulation.
+
+Array convention (one rule for the whole package):
+
+- Signals and Z-spectra are shaped ``(..., n_offsets)``: any leading voxel axes, the
+  saturation offsets last, with a separate 1-D ``offsets_ppm`` of length ``n_offsets``.
+  Functions say whether they need the offsets sorted (:func:`normalize` returns them
+  ascending with repeats averaged).
+- Data first, options keyword-only.
+- float32 in gives float32 out, float64 gives float64 (other numeric input becomes float64).
+- An invalid voxel is NaN, never a silent 0.
+- No Python loop over voxels on a hot path.
+- Bad input raises ``ValueError`` naming the problem.
+
+Only numpy and scipy are used: no DICOM, no files, no sockets.
+"""
+
+from quant.b0 import B0Result, correct_b0, estimate_b0_shift, resample_shifted
+from quant.measures import apt_star, arex, mtr_asym, mtr_asym_t1, z_at
+from quant.registry import METHODS, PRIMARY_METHOD, MethodInfo, get_method, register
+from quant.spectra import Spectrum, brain_mask, normalize, sort_offsets
+
+__all__ = [
+    "B0Result",
+    "METHODS",
+    "MethodInfo",
+    "PRIMARY_METHOD",
+    "Spectrum",
+    "apt_star",
+    "arex",
+    "brain_mask",
+    "correct_b0",
+    "estimate_b0_shift",
+    "get_method",
+    "mtr_asym",
+    "mtr_asym_t1",
+    "normalize",
+    "register",
+    "resample_shifted",
+    "sort_offsets",
+    "z_at",
+]
