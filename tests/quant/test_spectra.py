@@ -1,0 +1,70 @@
+"""Normalisation by M0, offset sorting, repeat averaging and the tissue mask."""
+
+import numpy as np
+import pytest
+
+from quant.phantom import make_phantom
+from quant.spectra import brain_mask, normalize, sort_offsets
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_normalize_sorts_averages_and_divides(dtype):
+    # Z = S / M0, the definition of the Z-spectrum (Zhou & van Zijl, Prog NMR Spectrosc 2006)
+    rng = np.random.default_rng(0)
+    offsets = np.array([-300.0, 2.0, -1.0, 2.0, 0.0, 300.0, -2.0])
+    sig = rng.uniform(10, 100, size=(3, 4, offsets.size)).astype(dtype)
+    sp = normalize(sig, offsets)
+    assert sp.z.dtype == dtype and sp.m0.dtype == dtype
+    np.testing.assert_array_equal(sp.offsets_ppm, [-2.0, -1.0, 0.0, 2.0])
+    m0 = (sig[..., 0] + sig[..., 5]) / 2
+    want = np.stack([sig[..., 6], sig[..., 2], sig[..., 4], (sig[..., 1] + sig[..., 3]) / 2], -1) / m0[..., None]
+    np.testing.assert_allclose(sp.z, want, rtol=1e-6)
+    np.testing.assert_allclose(sp.m0, m0, rtol=1e-6)
+
+
+def test_normalize_with_separate_m0_and_integer_input():
+    sig = np.array([[[40, 50, 60]]], dtype=np.uint16)
+    sp = normalize(sig, [1.0, -1.0, -300.0], m0=np.array([[100.0]]))
+    assert sp.z.dtype == np.float64
+    np.testing.assert_allclose(sp.z, [[[0.5, 0.4]]])  # the M0 frame in the signal is dropped
+
+
+def test_zero_m0_voxel_is_nan():
+    sig = np.array([[0.0, 0.0, 0.0], [100.0, 50.0, 60.0]])
+    sp = normalize(sig, [-300.0, -3.5, 3.5])
+    assert np.all(np.isnan(sp.z[0]))
+    np.testing.assert_allclose(sp.z[1], [0.5, 0.6])
+
+
+def test_sort_offsets_repeats():
+    s, o = sort_offsets(np.array([[1.0, 2.0, 3.0, 5.0]]), [0.5, -1.0, 0.5, 0.5 + 1e-9])
+    np.testing.assert_array_equal(o, [-1.0, 0.5])
+    np.testing.assert_allclose(s, [[2.0, 3.0]])
+
+
+def test_brain_mask_on_phantom():
+    ph = make_phantom(slices=2, size=48, snr=50.0)
+    mask = brain_mask(ph.signal[..., 0])
+    assert np.mean(mask == ph.brain) > 0.99
+
+
+def test_bad_input_names_the_problem():
+    sig = np.ones((2, 3))
+    with pytest.raises(ValueError, match="offsets_ppm has 2 entries but signal has 3"):
+        normalize(sig, [-300.0, 3.5])
+    with pytest.raises(ValueError, match="M0 is zero"):
+        normalize(np.zeros((2, 3)), [-300.0, -3.5, 3.5])
+    bad = np.ones((2, 3))
+    bad[0, 0] = np.nan
+    with pytest.raises(ValueError, match="M0 contains NaN"):
+        normalize(bad, [-300.0, -3.5, 3.5])
+    with pytest.raises(ValueError, match="no M0"):
+        normalize(sig, [-1.0, 0.0, 3.5])
+    with pytest.raises(ValueError, match="m0 has shape"):
+        normalize(sig, [-1.0, 0.0, 3.5], m0=np.ones(3))
+    with pytest.raises(ValueError, match="no saturated frame"):
+        normalize(sig, [-300.0, 300.0, 400.0])
+    with pytest.raises(ValueError, match="must be a numeric array"):
+        normalize(np.array([["a", "b"]]), [1.0, 2.0])
+    with pytest.raises(ValueError, match="fraction must be in"):
+        brain_mask(np.ones(4), fraction=1.5)
