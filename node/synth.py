@@ -44,7 +44,7 @@ def series_from_arrays(
     field_t: float = 3.0,
     b1_ut: float = 1.0,
     tsat_s: float = 2.0,
-    scale: float = 3000.0,
+    scale: float | None = None,
     seed: str = "phantom-0",
     patient_name: str = "PHANTOM^CEST",
     patient_id: str = "CESTPH-0001",
@@ -62,8 +62,11 @@ def series_from_arrays(
     ----------
     signal
         Magnitude images ``(slices, rows, cols, n_offsets)``, M0 frames included, in
-        acquisition order along the last axis (relative units; multiplied by ``scale`` and
+        acquisition order along the last axis (any units; multiplied by ``scale`` and
         stored as uint16).
+    scale
+        Factor to stored values; default: the brightest voxel maps to 30,000 (room below the
+        uint16 ceiling so that nothing clips).
     offsets_ppm
         Saturation offset of each frame, in acquisition order.
 
@@ -84,7 +87,10 @@ def series_from_arrays(
     study_uid = study_uid or uid_from(seed, "study")
     series_uid = series_uid or uid_from(seed, "series")
     frame_uid = uid_from(seed, "frame-of-reference")
-    pixels = np.clip(np.nan_to_num(signal * scale, nan=0.0), 0, 65535).astype(np.uint16)
+    if scale is None:
+        peak = float(np.nanmax(signal)) if signal.size else 0.0
+        scale = 30000.0 / peak if peak > 0 else 1.0
+    pixels = np.clip(np.rint(np.nan_to_num(signal * scale, nan=0.0)), 0, 65535).astype(np.uint16)
     now = _dt.datetime(2026, 1, 15, 9, 30, 0)
     freq_mhz = GAMMA_MHZ_PER_T * field_t
     out: list[Dataset] = []
