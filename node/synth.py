@@ -22,7 +22,7 @@ from pathlib import Path
 import numpy as np
 from pydicom import Dataset
 from pydicom.dataset import FileMetaDataset
-from pydicom.uid import ExplicitVRLittleEndian, MRImageStorage
+from pydicom.uid import UID, ExplicitVRLittleEndian, MRImageStorage
 
 from node import __version__
 from node.types import uid_from
@@ -37,7 +37,7 @@ GAMMA_MHZ_PER_T = 42.577478  # CODATA 2018 proton gyromagnetic ratio / 2 pi
 
 def series_from_arrays(
     signal: np.ndarray,
-    offsets_ppm: Sequence[float],
+    offsets_ppm: Sequence[float] | np.ndarray,
     *,
     pixel_spacing_mm: float = 1.8,
     slice_thickness_mm: float = 5.0,
@@ -99,7 +99,7 @@ def series_from_arrays(
         for s in range(n_slices):
             instance += 1
             ds = Dataset()
-            sop_uid = uid_from(seed, "instance", k, s)
+            sop_uid = UID(uid_from(seed, "instance", k, s))
             ds.file_meta = FileMetaDataset()
             ds.file_meta.MediaStorageSOPClassUID = MRImageStorage
             ds.file_meta.MediaStorageSOPInstanceUID = sop_uid
