@@ -16,6 +16,8 @@ Only numpy and scipy are used: no DICOM, no files, no sockets.
 """
 
 from quant.b0 import B0Result, correct_b0, estimate_b0_shift, resample_shifted
+from quant.bmfit import aptr_star  # noqa: F401  (model-based; not registered: needs B1/tsat/field)
+from quant.lorentz import lda, multi_lorentzian  # noqa: F401  (registers 'lda', 'multi_lorentzian')
 from quant.measures import apt_star, arex, mtr_asym, mtr_asym_t1, z_at
 from quant.registry import METHODS, PRIMARY_METHOD, MethodInfo, get_method, register
 from quant.spectra import Spectrum, brain_mask, normalize, sort_offsets

@@ -563,3 +563,33 @@ def lda(
         iterations=shape(res.iterations, np.int64),
         flags=shape(flags, np.uint8),
     )
+
+
+# ----------------------------------------------------------------------------------------------
+# registry entries (model-based: the scheduler defers them). Maps in % of M0 like the
+# model-free measures; cost per voxel measured by tests/bench/bench_fits.py (SNR 60, 61 offsets).
+
+
+def _lda_percent(z, offsets_ppm, *, t1_s=None):
+    return lda(z, offsets_ppm).map * 100
+
+
+def _multi_lorentzian_percent(z, offsets_ppm, *, t1_s=None):
+    return multi_lorentzian(z, offsets_ppm).map * 100
+
+
+def _register() -> None:
+    from quant.registry import METHODS, MethodInfo, register
+
+    if "lda" not in METHODS:
+        register(MethodInfo("lda", "Lorentzian difference 3.5 ppm", "%", False, False, 1.5e-4, _lda_percent))
+    if "multi_lorentzian" not in METHODS:
+        register(
+            MethodInfo(
+                "multi_lorentzian", "Amide amplitude, 5-pool Lorentzian fit", "%", False, False,
+                6e-4, _multi_lorentzian_percent, needs_b0=False,
+            )
+        )
+
+
+_register()
