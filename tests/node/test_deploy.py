@@ -18,10 +18,12 @@ import os
 import re
 import shlex
 import shutil
+import signal
 import stat
 import subprocess
 import sys
 import sysconfig
+import time
 from collections.abc import Iterator
 from dataclasses import dataclass
 from fnmatch import fnmatchcase
@@ -503,3 +505,91 @@ def _stop(proc: subprocess.Popen) -> None:
         except subprocess.TimeoutExpired:
             proc.kill()
             proc.wait()
+
+
+# --------------------------------------------------------------------------- the pair, run here
+def _substitute(text: str, old: str, new: str) -> str:
+    assert text.count(old) == 1, f"expected {old!r} once in the config"
+    return text.replace(old, new)
+
+
+@pytest.mark.peers
+@pytest.mark.slow
+def test_compose_pair_runs_here(tmp_path: Path, image_root: Path) -> None:
+    """What ``docker compose up`` would start, started here without containers.
+
+    Orthanc with deploy/orthanc.json (storage and ports moved, a web user added as compose's
+    environment adds one), and the node installed by the Containerfile's RUN steps, started
+    with the image's ENTRYPOINT + CMD (paths moved), deploy/compose.node.toml in place of the
+    mounted config with the compose host names and ports replaced by loopback ones. The phantom
+    scanner sends a series with DCMTK storescu; Orthanc must receive the derived series; the
+    HEALTHCHECK command must pass against the running node; SIGTERM must end it with status 0
+    (Restart=on-failure restarts only a failure).
+    """
+    exe = require("Orthanc")
+    import base64
+    import urllib.request
+
+    ocfg = json.loads((DEPLOY / "orthanc.json").read_text())
+    o_dicom, o_http, node_port = free_port(), free_port(), free_port()
+    ocfg.update(StorageDirectory=str(tmp_path / "db"), IndexDirectory=str(tmp_path / "db"),
+                DicomPort=o_dicom, HttpPort=o_http, RegisteredUsers={"research": "bench"})
+    (tmp_path / "orthanc.json").write_text(json.dumps(ocfg))
+    auth = "Basic " + base64.b64encode(b"research:bench").decode()
+
+    def orthanc_get(path: str) -> object:
+        req = urllib.request.Request(f"http://127.0.0.1:{o_http}{path}",
+                                     headers={"Authorization": auth})
+        with urllib.request.urlopen(req, timeout=10) as r:  # noqa: S310 (loopback only)
+            return json.loads(r.read())
+
+    text = (DEPLOY / "compose.node.toml").read_text()
+    text = _substitute(text, 'host = "0.0.0.0"', 'host = "127.0.0.1"')
+    text = _substitute(text, "port = 11112", f"port = {node_port}")
+    text = _substitute(text, 'host = "orthanc"', 'host = "127.0.0.1"')
+    text = _substitute(text, "port = 4242", f"port = {o_dicom}")
+    ins = containerfile()
+    argv = only(ins, "ENTRYPOINT").json_args() + only(ins, "CMD").json_args()
+    argv = [_IMAGE_PATHS.sub(str(image_root) + "/", a) for a in argv]
+    Path(option_value(argv, "--config")).write_text(text)
+    health = json.loads(only(ins, "HEALTHCHECK").args.split(" CMD ", 1)[1])
+    health = [_IMAGE_PATHS.sub(str(image_root) + "/", a) for a in health]
+    health[-1] = health[-1].replace(":11112", f":{node_port}")
+
+    from node.synth import phantom_series, write_series
+    files = write_series(phantom_series(slices=1, size=16), tmp_path / "scanner")
+
+    with (tmp_path / "orthanc.log").open("wb") as olog, \
+            (tmp_path / "node.log").open("wb") as nlog:
+        orthanc = subprocess.Popen([exe, str(tmp_path / "orthanc.json")], env=PEER_ENV,
+                                   stdout=olog, stderr=subprocess.STDOUT)
+        node = None
+        try:
+            _wait_or_fail(orthanc, o_dicom, tmp_path / "orthanc.log")
+            node = subprocess.Popen(argv, stdout=nlog, stderr=subprocess.STDOUT,
+                                    cwd=image_root / "var/lib/cest-node")
+            try:
+                wait_port(node_port, proc=node, timeout=60)
+            except (RuntimeError, TimeoutError) as exc:
+                raise AssertionError(f"the node did not start: {exc}\n"
+                                     f"{(tmp_path / 'node.log').read_text()[-3000:]}") from exc
+            ok = subprocess.run(health, capture_output=True, text=True, timeout=30)
+            assert ok.returncode == 0, ok.stdout + ok.stderr
+            storescu(node_port, files, called_ae="CESTNODE", calling_ae="SCANNER1")
+            deadline = time.monotonic() + 60
+            while time.monotonic() < deadline:
+                stats = orthanc_get("/statistics")
+                assert isinstance(stats, dict)
+                if int(stats["CountInstances"]) > 0:
+                    break
+                time.sleep(0.2)
+            series = orthanc_get("/series?expand")
+            assert isinstance(series, list) and series, (tmp_path / "node.log").read_text()
+            descriptions = [s["MainDicomTags"].get("SeriesDescription", "") for s in series]
+            assert all(d.startswith("RESEARCH") for d in descriptions), descriptions
+            node.send_signal(signal.SIGTERM)
+            assert node.wait(timeout=30) == 0, (tmp_path / "node.log").read_text()[-3000:]
+        finally:
+            if node is not None:
+                _stop(node)
+            _stop(orthanc)
