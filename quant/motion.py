@@ -410,8 +410,12 @@ def apply_motion(
         for s in range(0, flat_in.shape[0], _CHUNK_IMAGES):  # blocks of images, not voxels
             e = min(s + _CHUNK_IMAGES, flat_in.shape[0])
             spec = sfft.fft2(flat_in[s:e], axes=(-2, -1), workers=-1).astype(cdt)
-            ramp = np.exp(2j * np.pi * (fdy[s:e, None, None] * fy + fdx[s:e, None, None] * fx))
-            flat_out[s:e] = sfft.ifft2(spec * ramp.astype(cdt), axes=(-2, -1), workers=-1).real
+            # the phase ramp is separable: one row factor times one column factor
+            ry = np.exp(2j * np.pi * fdy[s:e, None] * fy[:, 0]).astype(cdt)  # (b, R)
+            rx = np.exp(2j * np.pi * fdx[s:e, None] * fx[0]).astype(cdt)  # (b, C)
+            spec *= ry[:, :, None]
+            spec *= rx[:, None, :]
+            flat_out[s:e] = sfft.ifft2(spec, axes=(-2, -1), workers=-1, overwrite_x=True).real
         out = out.reshape(lead + (n_r, n_c))
     else:
         order = 1 if interpolation == "linear" else 3
