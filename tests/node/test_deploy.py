@@ -244,8 +244,10 @@ def image_root(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Path]:
     under the root; ``python`` is this interpreter (3.11, like the base image); ``groupadd``
     and ``useradd`` get ``--prefix ROOT`` so that they write ROOT/etc/passwd (seeded with a
     root entry) instead of this machine's. pip runs as written, with ``PIP_NO_DEPS=1``: the
-    package is built and installed for real, its dependencies are lent from the test's own
-    environment by a .pth file afterwards instead of being downloaded.
+    package is built (in pip's isolated build environment, whose setuptools comes from this
+    machine's package index, as for ``.ci/run``'s own install) and installed for real; its
+    dependencies are lent from the test's own environment by a .pth file afterwards instead of
+    being downloaded.
     """
     if os.geteuid() != 0:
         pytest.skip("the container file's RUN steps chown to uid 10001: run the tests as root "
