@@ -25,12 +25,12 @@ def _signal(seed: int = 7) -> np.ndarray:
 
 
 def _series(**kw):
-    return series_from_arrays(_signal(), OFFSETS, **kw)
+    return series_from_arrays(_signal(), OFFSETS, scale=3000.0, **kw)
 
 
 def _expected(sig: np.ndarray) -> np.ndarray:
     # what node.synth stores: uint16 of signal*3000, as float32
-    return np.clip(sig * 3000.0, 0, 65535).astype(np.uint16).astype(np.float32)
+    return np.clip(np.rint(sig * 3000.0), 0, 65535).astype(np.uint16).astype(np.float32)
 
 
 def _cfg(**proto):

@@ -76,7 +76,7 @@ def node(tmp_path):
 def test_storescu_series_lands_in_spool_and_assembles(tmp_path, node, caplog):
     caplog.set_level(logging.DEBUG)
     rx, got = node
-    dss = series_from_arrays(_signal(), OFFSETS, **PATIENT)
+    dss = series_from_arrays(_signal(), OFFSETS, scale=3000.0, **PATIENT)
     files = write_series(dss, tmp_path / "src")
     random.Random(5).shuffle(files)  # scrambled arrival order
     storescu(rx.port, files)  # TCP_NODELAY=1 in the peer's environment (tests/peers.py)
@@ -84,7 +84,7 @@ def test_storescu_series_lands_in_spool_and_assembles(tmp_path, node, caplog):
     (s,) = got.series
     assert s.complete and s.signal.shape == (SLICES, 8, 8, len(OFFSETS))
     assert s.offsets_ppm.tolist() == sorted(OFFSETS)
-    ref = np.clip(_signal() * 3000, 0, 65535).astype(np.uint16).astype(np.float32)
+    ref = np.clip(np.rint(_signal() * 3000), 0, 65535).astype(np.uint16).astype(np.float32)
     np.testing.assert_array_equal(s.signal, ref[..., np.argsort(OFFSETS)])
     # spool: one 0600 file per instance in a 0700 folder, readable back as the same instance
     paths = rx.spool.instance_paths(s.key)
