@@ -10,7 +10,7 @@ symmetric about its centre, so the shift ``c`` minimises the symmetry cost
 
     C(c) = (1 / J) sum_j [S(c + d_j) - S(c - d_j)]^2,   d_j = j h / J,  j = 1..J,
 
-with ``S`` the voxel's spectrum (scaled by its maximum) interpolated by a cubic spline
+with ``S`` the voxel's spectrum (scaled by its baseline, see below) interpolated by a cubic spline
 (``scipy.interpolate.CubicSpline``, not-a-knot, applied as a matrix of weights since it is linear
 in the samples) and ``h`` the half-width of the compared
 window. A window that misses the dip (on the flat tail) is trivially symmetric, so ``C`` is
@@ -30,7 +30,8 @@ the line shape departing from a Lorentzian (a pulsed WASSR line is not exactly o
 
 Input follows the quant convention: ``signal`` ``(..., n_offsets)`` with a 1-D ``offsets_ppm``
 (unsorted and repeated offsets allowed: sorted, repeats averaged). Raw magnitudes or
-M0-normalised values both work (each voxel is scaled by its own maximum). A voxel with a
+M0-normalised values both work (each voxel is scaled by its baseline, the mean of its three
+highest samples). A voxel with a
 non-finite value, a maximum below ``min_signal`` (default: 0.1 of the 99th percentile of the
 voxel maxima, i.e. background) or no dip (depth ``(max - min) / max`` below ``min_depth``)
 is NaN. float32 in gives float32 out.
@@ -187,7 +188,7 @@ def wassr_shift(
     *,
     method: str = "symmetry",
     half_width_ppm: float | None = None,
-    coarse_step_ppm: float = 0.05,
+    coarse_step_ppm: float | None = None,
     n_pairs: int = 12,
     min_signal: float | None = None,
     min_depth: float = 0.1,
@@ -212,7 +213,9 @@ def wassr_shift(
         Half-width ``h`` of the window compared for symmetry; the search covers the sampled
         range less ``h`` on each side. Default 0.4 of the sampled half-range.
     coarse_step_ppm : float
-        Step of the coarse candidate grid (the fine grid is five times finer).
+        Step of the coarse candidate grid (the fine grid is five times finer); default half
+        the smallest spacing of the sampled offsets, so that a line barely wider than the
+        sampling is not stepped over.
     n_pairs : int
         Number ``J`` of mirrored pairs in the symmetry cost.
     min_signal : float, optional
@@ -256,6 +259,8 @@ def wassr_shift(
         raise ValueError(
             f"half_width_ppm must lie in (0, {half_range:g}) (half the sampled range), got {h}"
         )
+    if coarse_step_ppm is None:
+        coarse_step_ppm = min(0.5 * float(np.diff(x).min()), half_range - h)
     if not 0.0 < coarse_step_ppm <= half_range - h:
         raise ValueError(
             f"coarse_step_ppm must lie in (0, {half_range - h:g}] (the search half-range), "
@@ -279,7 +284,10 @@ def wassr_shift(
     idx = np.flatnonzero(use)
     for start in range(0, idx.size, _BLOCK):  # blocks of voxels, to bound memory
         b = idx[start : start + _BLOCK]
-        sb = s[b] / vmax[b, None]
+        # scaled by the baseline: the mean of the three highest samples (robust to one noisy
+        # maximum, so a flat noisy tail is not mistaken for a symmetric window)
+        base = np.sort(s[b], axis=1)[:, -3:].mean(axis=1)
+        sb = s[b] / base[:, None]
         if method == "symmetry":
             sh, ok, rr = _symmetry_block(sb, x, h, coarse_step_ppm, n_pairs)
         else:
