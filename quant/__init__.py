@@ -12,6 +12,10 @@ Array convention (one rule for the whole package):
 - No Python loop over voxels on a hot path.
 - Bad input raises ``ValueError`` naming the problem.
 
+Model-free measures come from :mod:`quant.measures`, the model-based fits (``lda``,
+``multi_lorentzian``, ``aptr_star``) from :mod:`quant.lorentz` and :mod:`quant.bmfit`; every
+method is listed with its needs and cost in :data:`METHODS` (:mod:`quant.registry`).
+
 Only numpy and scipy are used: no DICOM, no files, no sockets.
 """
 
@@ -29,13 +33,16 @@ __all__ = [
     "PRIMARY_METHOD",
     "Spectrum",
     "apt_star",
+    "aptr_star",
     "arex",
     "brain_mask",
     "correct_b0",
     "estimate_b0_shift",
     "get_method",
+    "lda",
     "mtr_asym",
     "mtr_asym_t1",
+    "multi_lorentzian",
     "normalize",
     "register",
     "resample_shifted",

@@ -90,44 +90,54 @@ def estimate_b0_shift(
             f"offsets_ppm have fewer than 3 points within {max_shift_ppm + window_ppm:g} ppm of water"
         )
     xc = off[cand].astype(dt)
-    sub = np.take(zz, cand, axis=-1)
-    flat = sub.reshape(-1, cand.size)
-    bad_voxel = ~np.all(np.isfinite(flat), axis=-1)
-    jmin = np.argmin(np.where(np.isfinite(flat), flat, np.inf), axis=-1)
+    flat = zz.reshape(-1, zz.shape[-1])
+    shift = np.empty(flat.shape[0], dtype=dt)
+    for r0 in range(0, flat.shape[0], _ROWS):  # row blocks keep the temporaries in cache
+        r1 = min(r0 + _ROWS, flat.shape[0])
+        shift[r0:r1] = _vertex_rows(flat[r0:r1, cand], xc, window_ppm, dt)
+    with np.errstate(invalid="ignore"):
+        shift[~(np.abs(shift) <= max_shift_ppm)] = np.nan
+    return shift.reshape(zz.shape[:-1])
+
+
+_ROWS = 2048
+
+
+def _vertex_rows(
+    sub: NDArray[np.floating], xc: NDArray[np.floating], window_ppm: float, dt: np.dtype
+) -> NDArray[np.floating]:
+    """Weighted parabola fit of y = Z/(1-Z) around each row's minimum; the vertex or NaN."""
+    finite = np.isfinite(sub)
+    bad_voxel = ~np.all(finite, axis=-1)
+    jmin = np.argmin(np.where(finite, sub, np.inf), axis=-1)
     xmin = xc[jmin]
     u = xc[None, :] - xmin[:, None]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        one_minus = 1.0 - flat
-        ok = (np.abs(u) <= window_ppm + 1e-9) & (flat < 0.95) & np.isfinite(flat)
-        y = np.where(ok, flat / np.where(ok, one_minus, 1), 0).astype(dt)
-        w = np.where(ok, one_minus * one_minus, 0).astype(dt)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        one_minus = 1.0 - sub
+        ok = (np.abs(u) <= window_ppm + 1e-6) & (sub < 0.95) & finite
+        w = np.where(ok, one_minus * one_minus, 0).astype(dt, copy=False)
         w *= w
+        y = np.where(ok, sub / one_minus, 0).astype(dt, copy=False)
         wu = w * u
         wu2 = wu * u
+        wu3 = wu2 * u
         s0 = w.sum(-1)
         s1 = wu.sum(-1)
         s2 = wu2.sum(-1)
-        s3 = (wu2 * u).sum(-1)
-        s4 = (wu2 * u * u).sum(-1)
+        s3 = wu3.sum(-1)
+        s4 = (wu3 * u).sum(-1)
         t0 = (w * y).sum(-1)
         t1 = (wu * y).sum(-1)
         t2 = (wu2 * y).sum(-1)
-        # normal equations [[s4 s3 s2] [s3 s2 s1] [s2 s1 s0]] [a b c] = [t2 t1 t0]
-        det = s4 * (s2 * s0 - s1 * s1) - s3 * (s3 * s0 - s1 * s2) + s2 * (s3 * s1 - s2 * s2)
-        da = t2 * (s2 * s0 - s1 * s1) - s3 * (t1 * s0 - s1 * t0) + s2 * (t1 * s1 - s2 * t0)
+        # normal equations [[s4 s3 s2] [s3 s2 s1] [s2 s1 s0]] [a b c] = [t2 t1 t0], Cramer
+        c00 = s2 * s0 - s1 * s1
+        det = s4 * c00 - s3 * (s3 * s0 - s1 * s2) + s2 * (s3 * s1 - s2 * s2)
+        da = t2 * c00 - s3 * (t1 * s0 - s1 * t0) + s2 * (t1 * s1 - s2 * t0)
         db = s4 * (t1 * s0 - t0 * s1) - t2 * (s3 * s0 - s1 * s2) + s2 * (s3 * t0 - t1 * s2)
         vertex = -db / (2.0 * da)  # a = da/det, b = db/det: -b/(2a)
         npts = ok.sum(-1)
-        good = (
-            (npts >= 3)
-            & (da * det > 0)
-            & np.isfinite(vertex)
-            & (np.abs(vertex) <= window_ppm)
-            & ~bad_voxel
-        )
-        shift = np.where(good, xmin + vertex, np.nan)
-        shift = np.where(np.abs(shift) <= max_shift_ppm, shift, np.nan)
-    return shift.astype(dt, copy=False).reshape(zz.shape[:-1])
+        good = (npts >= 3) & (da * det > 0) & (np.abs(vertex) <= window_ppm) & ~bad_voxel
+        return np.where(good, xmin + vertex, np.nan).astype(dt, copy=False)
 
 
 @lru_cache(maxsize=16)
@@ -189,17 +199,16 @@ def resample_shifted(
     y = zz.reshape(-1, n)
     sv = s.reshape(-1).astype(dt)
     op = _natural_spline_operator(tuple(off.tolist())).astype(dt)
-    m2 = y @ op.T  # (N, n) second derivatives
     h = np.diff(off)
     if np.allclose(h, h[0], rtol=1e-6, atol=0):
-        out = _resample_uniform(y, m2, sv, float(np.mean(h)), dt)
+        out = _resample_uniform(y, op, sv, float(np.mean(h)), dt)
     else:
-        out = _resample_general(y, m2, sv, off.astype(dt), dt)
+        out = _resample_general(y, y @ op.T, sv, off.astype(dt), dt)
     return out.reshape(zz.shape)
 
 
 def _resample_uniform(
-    y: NDArray[np.floating], m2: NDArray[np.floating], sv: NDArray[np.floating], h: float, dt: np.dtype
+    y: NDArray[np.floating], op: NDArray[np.floating], sv: NDArray[np.floating], h: float, dt: np.dtype
 ) -> NDArray[np.floating]:
     n = y.shape[1]
     out = np.full(y.shape, np.nan, dtype=dt)
@@ -211,33 +220,46 @@ def _resample_uniform(
     mi[near] += 1.0
     f[near] = 0.0
     exact = f < 1e-6
-    mi_i = mi.astype(np.int64)
-    key = np.where(finite, mi_i * 2 + exact, np.iinfo(np.int64).min)
+    key = np.where(finite, mi.astype(np.int64) * 2 + exact, np.iinfo(np.int64).min)
+    order = np.argsort(key, kind="stable")
+    ks = key[order]
+    bounds = np.flatnonzero(np.diff(ks)) + 1
+    starts = np.concatenate([[0], bounds])
+    ends = np.concatenate([bounds, [ks.size]])
     h2 = h * h / 6.0
-    for k in np.unique(key[finite]):
-        sel = np.flatnonzero(key == k)
-        m = int(k // 2)
+    opt = np.ascontiguousarray(op.T)
+    for g0, g1 in zip(starts.tolist(), ends.tolist(), strict=True):
+        k = int(ks[g0])
+        if k == np.iinfo(np.int64).min:
+            continue  # NaN shifts stay NaN
+        m = k // 2
         if abs(m) >= n:
             continue
-        if k % 2:  # exactly on the knots: a copy moved by m columns
-            lo, hi = max(0, -m), min(n, n - m)
-            out[sel, lo:hi] = y[sel, lo + m : hi + m]
-            continue
-        lo, hi = max(0, -m), min(n, n - 1 - m)  # output columns with an interval inside
-        if hi <= lo:
-            continue
-        b = f[sel].astype(dt)[:, None]
-        a = 1.0 - b
-        ca = (a * a * a - a) * h2
-        cb = (b * b * b - b) * h2
-        yg = y[sel]
-        mg = m2[sel]
-        j0, j1 = lo + m, hi + m
-        res = yg[:, j0:j1] * a
-        res += yg[:, j0 + 1 : j1 + 1] * b
-        res += mg[:, j0:j1] * ca
-        res += mg[:, j0 + 1 : j1 + 1] * cb
-        out[sel, lo:hi] = res
+        for r0 in range(g0, g1, _ROWS):  # row blocks: gather, spline, evaluate in cache
+            sel = order[r0 : min(r0 + _ROWS, g1)]
+            yg = y[sel]
+            if k % 2:  # exactly on the knots: the samples moved by m columns
+                lo, hi = max(0, -m), min(n, n - m)
+                blk = np.full(yg.shape, np.nan, dtype=dt)
+                blk[:, lo:hi] = yg[:, lo + m : hi + m]
+                out[sel] = blk
+                continue
+            lo, hi = max(0, -m), min(n, n - 1 - m)  # columns whose interval lies inside
+            if hi <= lo:
+                continue
+            mg = yg @ opt
+            b = f[sel].astype(dt)[:, None]
+            a = 1.0 - b
+            ca = (a * a * a - a) * h2
+            cb = (b * b * b - b) * h2
+            j0, j1 = lo + m, hi + m
+            blk = np.full(yg.shape, np.nan, dtype=dt)
+            res = blk[:, lo:hi]
+            np.multiply(yg[:, j0:j1], a, out=res)
+            res += yg[:, j0 + 1 : j1 + 1] * b
+            res += mg[:, j0:j1] * ca
+            res += mg[:, j0 + 1 : j1 + 1] * cb
+            out[sel] = blk
     return out
 
 

@@ -19,7 +19,7 @@ from numpy.typing import NDArray
 
 from quant.measures import apt_star, arex, mtr_asym, mtr_asym_t1
 
-__all__ = ["MethodInfo", "METHODS", "PRIMARY_METHOD", "register", "get_method"]
+__all__ = ["MethodInfo", "METHODS", "PRIMARY_METHOD", "PREPARE_COST_S_PER_VOXEL", "register", "get_method"]
 
 Compute = Callable[..., NDArray[np.floating]]
 
@@ -98,7 +98,11 @@ def _arex(z: Any, offsets_ppm: Any, *, t1_s: Any = None) -> NDArray[np.floating]
     return arex(z, offsets_ppm, t1_s)
 
 
-register(MethodInfo("mtr_asym", "MTRasym 3.5 ppm (B0-corrected)", "%", False, True, 2e-8, _mtr_asym))
+PREPARE_COST_S_PER_VOXEL = 2e-6
+"""Seconds per voxel of the shared preparation (normalise, estimate and correct B0), measured
+by the same benchmark and rounded up; it is paid once per series, not per method."""
+
+register(MethodInfo("mtr_asym", "MTRasym 3.5 ppm (B0-corrected)", "%", False, True, 3e-8, _mtr_asym))
 register(MethodInfo("mtr_asym_t1", "MTRasym / T1 3.5 ppm", "%/s", True, True, 3e-8, _mtr_asym_t1))
 register(MethodInfo("apt_star", "APT* linear reference 3.5 ppm", "%", False, True, 3e-8, _apt_star))
 register(MethodInfo("arex", "AREX 3.5 ppm", "%/s", True, True, 4e-8, _arex))
