@@ -163,6 +163,8 @@ class Protocol:
         Seconds from the last instance received to the last output acknowledged.
     field_t, b1_ut, tsat_s
         Main field (T), saturation amplitude (uT), saturation duration (s).
+    model_based
+        Run the protocol's model-based methods in the deferred pass (False: skip them).
     """
 
     name: str
@@ -180,6 +182,7 @@ class Protocol:
     field_t: float = 3.0
     b1_ut: float = 1.0
     tsat_s: float = 2.0
+    model_based: bool = True
 
     @property
     def primary_method(self) -> str:
@@ -590,7 +593,7 @@ def _protocol(value: Any, key: str, known_methods: tuple[str, ...] | None) -> Pr
     _only(t, {"name", "match", "offset", "expected_frames", "expected_offsets",
               "expected_slices", "m0_threshold_ppm", "required_offsets_ppm",
               "required_tolerance_ppm", "methods", "outputs", "budget_s", "field_t", "b1_ut",
-              "tsat_s"}, key)
+              "tsat_s", "model_based"}, key)
     for k in ("name", "match", "offset"):
         if k not in t:
             raise ConfigError(f"{key}.{k}: required")
@@ -664,4 +667,5 @@ def _protocol(value: Any, key: str, known_methods: tuple[str, ...] | None) -> Pr
         field_t=_number(t.get("field_t", 3.0), f"{key}.field_t", gt=0),
         b1_ut=_number(t.get("b1_ut", 1.0), f"{key}.b1_ut", gt=0),
         tsat_s=_number(t.get("tsat_s", 2.0), f"{key}.tsat_s", gt=0),
+        model_based=_bool(t.get("model_based", True), f"{key}.model_based"),
     )

@@ -9,6 +9,7 @@ hands each batch to a ``deliver`` callable (the sender in ``serve``, a folder wr
 from __future__ import annotations
 
 import logging
+import queue
 import threading
 import time
 from collections.abc import Callable, Sequence
@@ -68,6 +69,16 @@ def output_series_number(source_number: int | None, method: str, kind: str) -> i
     return base * 100 + 10 * (m % 10) + k + 1
 
 
+@dataclass
+class DeferredJob:
+    """The model-based methods of a series, run after its model-free outputs were sent."""
+
+    series: AssembledSeries
+    protocol: Protocol
+    prep: pipeline.Prepared
+    methods: list[str]
+
+
 class Processor:
     """Computes, builds and delivers the outputs of assembled series.
 
@@ -83,6 +94,10 @@ class Processor:
         Keep the computed maps in the outcome (tests and the demo use them).
     """
 
+    #: voxels per chunk of a model-based fit in the deferred pass (between chunks the pass
+    #: gives way to a primary pass and notices a shutdown)
+    CHUNK_VOXELS = 4096
+
     def __init__(self, config: NodeConfig, deliver: Deliver, *, cost: CostModel | None = None,
                  keep_maps: bool = False):
         self.config = config
@@ -90,20 +105,25 @@ class Processor:
         self.cost = cost or CostModel.from_registry(METHODS)
         self.keep_maps = keep_maps
 
-    def process(self, series: AssembledSeries) -> SeriesOutcome:
+    def process(self, series: AssembledSeries) -> tuple[SeriesOutcome, DeferredJob | None]:
+        """The budget-bound pass: the primary method, then the model-free methods that fit.
+
+        Returns the outcome (with its latency record) and the deferred job of the model-based
+        methods, if the protocol has any (run it with :meth:`run_deferred`).
+        """
         protocol = self.config.protocol(series.protocol)
         clock = SeriesClock(series.key)
         for name, t in series.clock.items():
             clock.mark(name, t)
         clock.mark("processing_start")
         outcome = SeriesOutcome(series.key, protocol.name, ok=False)
+        job = None
         try:
-            self._process(series, protocol, clock, outcome)
+            job = self._process(series, protocol, clock, outcome)
         except Exception as exc:  # a failure of one series never stops the node
             outcome.ok = False
             outcome.error = f"{type(exc).__name__}: {exc}"
             log.exception("series %s: processing failed", series.key)
-        clock.mark("done")
         outcome.record = clock.record(
             budget_s=protocol.budget_s,
             protocol=protocol.name,
@@ -117,14 +137,62 @@ class Processor:
             ok=outcome.ok,
             error=outcome.error,
         )
+        return outcome, job
+
+    def run_deferred(self, job: DeferredJob, *,
+                     between_chunks: Callable[[int, int], bool] | None = None) -> SeriesOutcome:
+        """The deferred pass: model-based fits, chunk by chunk, each method's outputs sent as
+        soon as it is done. Its latency record has ``"pass": "deferred"``."""
+        series, protocol = job.series, job.protocol
+        clock = SeriesClock(series.key)
+        clock.mark("deferred_start")
+        outcome = SeriesOutcome(series.key, protocol.name, ok=True)
+        for name in job.methods:
+            last_log = [time.monotonic()]
+
+            def progress(done: int, total: int, name: str = name,
+                         last_log: list[float] = last_log) -> bool:
+                if time.monotonic() - last_log[0] > 5.0:
+                    log.info("series %s: deferred %s %d%% (%d of %d voxels)", series.key,
+                             name, 100 * done // max(total, 1), done, total)
+                    last_log[0] = time.monotonic()
+                return True if between_chunks is None else between_chunks(done, total)
+
+            try:
+                with clock.stage(f"method:{name}"):
+                    res = pipeline.compute(job.prep, name, chunk_voxels=self.CHUNK_VOXELS,
+                                           between_chunks=progress)
+                self._emit(series, protocol, job.prep, res, clock, outcome)
+                log.info("series %s: deferred %s done in %.1f s", series.key, name, res.seconds)
+            except pipeline.Abandoned as exc:
+                outcome.ok = False
+                outcome.error = str(exc)
+                log.warning("series %s: %s", series.key, exc)
+                break
+            except Exception as exc:
+                outcome.ok = False
+                outcome.error = f"{name}: {type(exc).__name__}: {exc}"
+                log.exception("series %s: deferred %s failed", series.key, name)
+        clock.mark("last_ack")
+        outcome.record = clock.record(
+            budget_s=protocol.budget_s, protocol=protocol.name, methods=outcome.methods,
+            objects=outcome.objects, ok=outcome.ok, error=outcome.error, **{"pass": "deferred"},
+        )
+        # the budget binds the model-free pass only
+        outcome.record["budget_met"] = None
+        outcome.record["total_ms"] = None
+        outcome.record["deferred_ms"] = round(clock.since("deferred_start") * 1000.0, 1)
         return outcome
 
     # ------------------------------------------------------------------------------------
     def _process(self, series: AssembledSeries, protocol: Protocol, clock: SeriesClock,
-                 outcome: SeriesOutcome) -> None:
+                 outcome: SeriesOutcome) -> DeferredJob | None:
         with clock.stage("prepare"):
-            prep = pipeline.prepare(series.signal, series.offsets_ppm,
-                                    m0_threshold_ppm=protocol.m0_threshold_ppm)
+            prep = pipeline.prepare(
+                series.signal, series.offsets_ppm, m0_threshold_ppm=protocol.m0_threshold_ppm,
+                saturation={"b1_ut": protocol.b1_ut, "tsat_s": protocol.tsat_s,
+                            "field_t": protocol.field_t},
+            )
         for name, sec in prep.seconds.items():
             clock.add(name, sec * 1000.0)
         slices = series.signal.shape[0]
@@ -133,53 +201,61 @@ class Processor:
             protocol.methods, registry=METHODS, cost=self.cost, n_voxels=n_voxels,
             n_slices=slices, n_outputs=len(protocol.outputs), budget_s=protocol.budget_s,
             elapsed_s=clock.since("last_instance") if "last_instance" in clock.marks else 0.0,
-            have_t1=False,
+            have_t1=False, deferred_enabled=protocol.model_based,
         )
         outcome.skipped = dict(plan.skipped)
         outcome.deferred = list(plan.deferred)
         clock.info["predicted_s"] = plan.predicted_s
         for name, why in plan.skipped.items():
             log.info("series %s: method %s skipped: %s", series.key, name, why)
-        source_uid = str(series.references[0].SeriesInstanceUID)
-        source_number = series.references[0].get("SeriesNumber")
-        all_ok = True
         measured: dict[str, float] = {}
         for name in plan.run:
             with clock.stage(f"method:{name}"):
                 res = pipeline.compute(prep, name)
             measured[name] = res.seconds
             self.cost.learn(name, seconds=res.seconds, n_voxels=max(res.n_voxels, 1))
-            if self.keep_maps:
-                outcome.maps[name] = res.values
-            datasets: list[Dataset] = []
-            lo_hi = pipeline.display_range(res.values)
-            for kind in OUTPUT_ORDER:
-                if kind not in protocol.outputs:
-                    continue
-                req = DerivedRequest(
-                    references=series.references,
-                    values=res.values,
-                    method=name,
-                    title=res.title,
-                    unit_ucum=res.unit_ucum,
-                    series_uid=output_series_uid(source_uid, name, kind),
-                    series_number=output_series_number(source_number, name, kind),
-                    m0=prep.m0 if kind == "secondary_capture" else None,
-                    display_range=lo_hi,
-                    note="" if series.complete else "incomplete series",
-                )
-                with clock.stage(f"build:{name}:{kind}"):
-                    datasets.extend(BUILDERS[kind](req))
-            batch = OutputBatch(series.key, datasets, label=name)
-            ok = self.deliver(batch, clock)
-            all_ok &= ok
-            outcome.objects += len(datasets)
-            outcome.methods.append(name)
+            self._emit(series, protocol, prep, res, clock, outcome)
             if name == plan.primary:
                 clock.mark("primary_ack")
         clock.info["measured_s"] = {k: round(v, 4) for k, v in measured.items()}
         clock.mark("last_ack")
-        outcome.ok = all_ok
+        outcome.ok = not outcome.error
+        if plan.deferred:
+            return DeferredJob(series, protocol, prep, list(plan.deferred))
+        return None
+
+    def _emit(self, series: AssembledSeries, protocol: Protocol, prep: pipeline.Prepared,
+              res: pipeline.MethodResult, clock: SeriesClock, outcome: SeriesOutcome) -> None:
+        """Build every configured output of one method and deliver them as one batch."""
+        name = res.name
+        if self.keep_maps:
+            outcome.maps[name] = res.values
+        source_uid = str(series.references[0].SeriesInstanceUID)
+        source_number = series.references[0].get("SeriesNumber")
+        datasets: list[Dataset] = []
+        lo_hi = pipeline.display_range(res.values)
+        for kind in OUTPUT_ORDER:
+            if kind not in protocol.outputs:
+                continue
+            req = DerivedRequest(
+                references=series.references,
+                values=res.values,
+                method=name,
+                title=res.title,
+                unit_ucum=res.unit_ucum,
+                series_uid=output_series_uid(source_uid, name, kind),
+                series_number=output_series_number(source_number, name, kind),
+                m0=prep.m0 if kind == "secondary_capture" else None,
+                display_range=lo_hi,
+                note="" if series.complete else "incomplete series",
+            )
+            with clock.stage(f"build:{name}:{kind}"):
+                datasets.extend(BUILDERS[kind](req))
+        ok = self.deliver(OutputBatch(series.key, datasets, label=name), clock)
+        if not ok:
+            outcome.error = outcome.error or f"{name}: not every object was stored"
+        outcome.objects += len(datasets)
+        outcome.methods.append(name)
 
 
 class Node:
@@ -191,7 +267,14 @@ class Node:
         The node config. Destinations receive every derived object.
     on_outcome
         Optional callback with every :class:`SeriesOutcome` (after its latency record is
-        written), e.g. for the demo to wait on.
+        written): the budget-bound pass and, later, the deferred pass of each series
+        (``outcome.record["pass"] == "deferred"``).
+
+    Notes
+    -----
+    Model-based methods run on a deferred thread, one series at a time, in chunks of voxels;
+    before each chunk the deferred pass waits while any budget-bound pass is running, so it
+    never delays the next series' primary outputs by more than one chunk.
     """
 
     def __init__(self, config: NodeConfig, *, on_outcome: Callable[[SeriesOutcome], None] | None = None,
@@ -205,6 +288,10 @@ class Node:
         self.receiver = Receiver(config, self._on_series)
         self.on_outcome = on_outcome
         self._unsent_dir = Path(config.spool_dir) / "unsent"
+        self._deferred: queue.Queue[DeferredJob | None] = queue.Queue()
+        self._primary_idle = threading.Event()
+        self._primary_idle.set()
+        self._deferred_thread: threading.Thread | None = None
 
     @property
     def port(self) -> int | None:
@@ -212,12 +299,20 @@ class Node:
 
     def start(self) -> Node:
         self._stop.clear()
+        self._deferred_thread = threading.Thread(target=self._deferred_loop,
+                                                 name="cest-deferred", daemon=True)
+        self._deferred_thread.start()
         self.receiver.start()
         return self
 
     def stop(self) -> None:
         self._stop.set()
+        self._primary_idle.set()
         self.receiver.stop()
+        self._deferred.put(None)
+        if self._deferred_thread is not None:
+            self._deferred_thread.join(timeout=30)
+            self._deferred_thread = None
 
     def __enter__(self) -> Node:
         return self.start()
@@ -227,16 +322,46 @@ class Node:
 
     # ------------------------------------------------------------------------------------
     def _on_series(self, series: AssembledSeries) -> None:
-        outcome = self.processor.process(series)
+        self._primary_idle.clear()
+        try:
+            outcome, job = self.processor.process(series)
+        finally:
+            self._primary_idle.set()
+        self._finish(outcome)
+        if job is not None:
+            self._deferred.put(job)
+
+    def _finish(self, outcome: SeriesOutcome) -> None:
         self.latency.write(outcome.record)
-        log.info(
-            "series %s: %s, %d objects, primary %s ms, total %s ms (budget %s s)",
-            series.key, "done" if outcome.ok else "FAILED", outcome.objects,
-            outcome.record.get("primary_ms"), outcome.record.get("total_ms"),
-            outcome.record.get("budget_s"),
-        )
+        rec = outcome.record
+        if rec.get("pass") == "deferred":
+            log.info("series %s: deferred pass %s, %d objects in %s ms", outcome.key,
+                     "done" if outcome.ok else "FAILED", outcome.objects, rec.get("deferred_ms"))
+        else:
+            log.info(
+                "series %s: %s, %d objects, primary %s ms, total %s ms (budget %s s)",
+                outcome.key, "done" if outcome.ok else "FAILED", outcome.objects,
+                rec.get("primary_ms"), rec.get("total_ms"), rec.get("budget_s"),
+            )
         if self.on_outcome is not None:
             self.on_outcome(outcome)
+
+    def _give_way(self, done: int, total: int) -> bool:
+        """Between chunks of a fit: wait while a budget-bound pass runs; False on shutdown."""
+        self._primary_idle.wait()  # stop() sets it too, so a shutdown never waits here
+        return not self._stop.is_set()
+
+    def _deferred_loop(self) -> None:
+        while True:
+            job = self._deferred.get()
+            if job is None or self._stop.is_set():
+                return
+            try:
+                outcome = self.processor.run_deferred(job, between_chunks=self._give_way)
+            except Exception:  # never let one series end the deferred thread
+                log.exception("series %s: deferred pass failed", job.series.key)
+                continue
+            self._finish(outcome)
 
     def _deliver(self, batch: OutputBatch, clock: SeriesClock) -> bool:
         if not self.config.destinations:

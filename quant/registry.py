@@ -37,7 +37,10 @@ class MethodInfo:
     model_free : False for fits (the scheduler defers them).
     cost_s_per_voxel : measured seconds per voxel of ``compute``.
     compute : ``compute(z, offsets_ppm, *, t1_s=None) -> map``.
-    needs_b0 : True when the method expects B0-corrected input (all of ours do).
+    needs_b0 : True when the method expects B0-corrected input; False for fits that model the
+        water shift themselves (they get the uncorrected spectra).
+    needs_saturation : True when ``compute`` also takes the saturation parameters
+        ``b1_ut``, ``tsat_s`` and ``field_t`` as keyword arguments (Bloch-McConnell fits).
     """
 
     name: str
@@ -48,6 +51,7 @@ class MethodInfo:
     cost_s_per_voxel: float
     compute: Compute
     needs_b0: bool = True
+    needs_saturation: bool = False
 
     def __post_init__(self) -> None:
         if not self.name or not self.name.replace("_", "").isalnum():

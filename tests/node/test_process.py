@@ -23,7 +23,7 @@ def datasets():
 def _maps(cfg, dsets):
     outcomes = []
     proc = Processor(cfg, lambda batch, clock: True, keep_maps=True)
-    with Assembler(cfg, lambda s: outcomes.append(proc.process(s))) as asm:
+    with Assembler(cfg, lambda s: outcomes.append(proc.process(s)[0])) as asm:
         for ds in dsets:
             asm.add(ds)
         asm.flush()
