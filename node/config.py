@@ -15,6 +15,7 @@ Public names
 
 from __future__ import annotations
 
+import ipaddress
 import math
 import re
 import tomllib
@@ -25,6 +26,8 @@ from pathlib import Path
 from typing import Any, Literal
 
 from pydicom.datadict import tag_for_keyword
+
+from node.tls import TlsSettings
 
 __all__ = [
     "OUTPUT_KINDS",
@@ -56,11 +59,15 @@ class ConfigError(ValueError):
 # --------------------------------------------------------------------------- the objects
 @dataclass(frozen=True)
 class Destination:
-    """A DICOM peer that receives every derived object (C-STORE SCP)."""
+    """A DICOM peer that receives every derived object (C-STORE SCP).
+
+    ``tls`` sends to it over TLS with the node's ``[tls]`` certificates (:mod:`node.tls`).
+    """
 
     ae_title: str
     host: str
     port: int
+    tls: bool = False
 
     def __str__(self) -> str:
         return f"{self.ae_title}@{self.host}:{self.port}"
@@ -231,6 +238,21 @@ class NodeConfig:
         Largest PDU accepted (bytes, 0 = unlimited).
     protocols
         Tried in order; the first match wins.
+    allowed_peer_addresses
+        IP networks (a single address is a /32 or /128) whose peers may associate; empty
+        accepts any address. Others get A-ASSOCIATE-RJ.
+    max_associations
+        Simultaneous incoming associations; one more is rejected (transient, local limit
+        exceeded).
+    min_free_mb
+        Free space (MiB) the spool's file system must keep; below it new instances get
+        0xA700 and nothing is written.
+    max_rows, max_cols, max_frames_per_series
+        Size limits: an instance beyond them, or one that would take its series beyond
+        ``max_frames_per_series`` frames, gets 0xA700. They bound the memory of one series
+        (see the README).
+    tls
+        TLS certificates and policy (:class:`~node.tls.TlsSettings`), None without TLS.
     """
 
     ae_title: str = "CESTNODE"
@@ -245,6 +267,13 @@ class NodeConfig:
     release_grace_s: float = 2.0
     max_pdu: int = 262144
     protocols: tuple[Protocol, ...] = ()
+    allowed_peer_addresses: tuple[ipaddress.IPv4Network | ipaddress.IPv6Network, ...] = ()
+    max_associations: int = 8
+    min_free_mb: float = 512.0
+    max_rows: int = 1024
+    max_cols: int = 1024
+    max_frames_per_series: int = 4096
+    tls: TlsSettings | None = None
 
     def with_overrides(self, **changes: Any) -> NodeConfig:
         """A copy with some fields replaced (what ``serve --port`` and friends change).
@@ -268,6 +297,8 @@ class NodeConfig:
                 fixed[key] = Path(value).expanduser().absolute()
             elif key == "allowed_calling_aets":
                 fixed[key] = tuple(_ae_title(v, f"{key}[{i}]") for i, v in enumerate(value))
+            elif key == "allowed_peer_addresses":
+                fixed[key] = tuple(_network(v, f"{key}[{i}]") for i, v in enumerate(value))
             elif key in self.__dataclass_fields__:
                 fixed[key] = value
             else:
@@ -332,10 +363,14 @@ def parse_config(
         raise ConfigError(f"config: expected a table, got {type(data).__name__}")
     base = Path(base_dir) if base_dir is not None else Path.cwd()
     known = tuple(known_methods) if known_methods is not None else None
-    _only(data, {"node", "destinations", "protocols"}, "")
+    _only(data, {"node", "destinations", "protocols", "tls"}, "")
     node = _table(data.get("node", {}), "node")
     _only(node, {"ae_title", "host", "port", "allowed_calling_aets", "spool_dir", "log_dir",
-                 "fsync", "idle_timeout_s", "release_grace_s", "max_pdu"}, "node")
+                 "fsync", "idle_timeout_s", "release_grace_s", "max_pdu",
+                 "allowed_peer_addresses", "max_associations", "min_free_mb", "max_rows",
+                 "max_cols", "max_frames_per_series"}, "node")
+    peers = _array(node.get("allowed_peer_addresses", []), "node.allowed_peer_addresses")
+    tls = _tls(data["tls"], "tls", base) if "tls" in data else None
     dests_raw = _array(data.get("destinations", []), "destinations")
     destinations = tuple(_destination(d, f"destinations[{i}]") for i, d in enumerate(dests_raw))
     protos_raw = _array(data.get("protocols", []), "protocols")
@@ -361,6 +396,16 @@ def parse_config(
         release_grace_s=_number(node.get("release_grace_s", 2.0), "node.release_grace_s", ge=0),
         max_pdu=_int(node.get("max_pdu", 262144), "node.max_pdu", ge=0),
         protocols=protocols,
+        allowed_peer_addresses=tuple(
+            _network(a, f"node.allowed_peer_addresses[{i}]") for i, a in enumerate(peers)
+        ),
+        max_associations=_int(node.get("max_associations", 8), "node.max_associations", ge=1),
+        min_free_mb=_number(node.get("min_free_mb", 512.0), "node.min_free_mb", ge=0),
+        max_rows=_int(node.get("max_rows", 1024), "node.max_rows", ge=1),
+        max_cols=_int(node.get("max_cols", 1024), "node.max_cols", ge=1),
+        max_frames_per_series=_int(node.get("max_frames_per_series", 4096),
+                                   "node.max_frames_per_series", ge=1),
+        tls=tls,
     )
 
 
@@ -497,7 +542,7 @@ def _regex(value: Any, key: str) -> str:
 
 def _destination(value: Any, key: str) -> Destination:
     t = _table(value, key)
-    _only(t, {"ae_title", "host", "port"}, key)
+    _only(t, {"ae_title", "host", "port", "tls"}, key)
     for k in ("ae_title", "host", "port"):
         if k not in t:
             raise ConfigError(f"{key}.{k}: required")
@@ -505,7 +550,38 @@ def _destination(value: Any, key: str) -> Destination:
         ae_title=_ae_title(t["ae_title"], f"{key}.ae_title"),
         host=_str(t["host"], f"{key}.host", nonempty=True),
         port=_port(t["port"], f"{key}.port"),
+        tls=_bool(t.get("tls", False), f"{key}.tls"),
     )
+
+
+def _network(value: Any, key: str) -> ipaddress.IPv4Network | ipaddress.IPv6Network:
+    text = _str(value, key, nonempty=True)
+    try:
+        return ipaddress.ip_network(text.strip(), strict=False)
+    except ValueError:
+        raise ConfigError(f"{key}: expected an IP address or network like '10.1.2.0/24', "
+                          f"got {text!r}") from None
+
+
+def _tls(value: Any, key: str, base: Path) -> TlsSettings:
+    t = _table(value, key)
+    _only(t, {"receive", "cert_file", "key_file", "ca_file", "require_client_cert",
+              "check_hostname"}, key)
+    def file(k: str) -> Path | None:
+        return _path(t[k], f"{key}.{k}", base) if k in t else None
+
+    try:
+        return TlsSettings(
+            receive=_bool(t.get("receive", False), f"{key}.receive"),
+            cert_file=file("cert_file"),
+            key_file=file("key_file"),
+            ca_file=file("ca_file"),
+            require_client_cert=_bool(t.get("require_client_cert", True),
+                                      f"{key}.require_client_cert"),
+            check_hostname=_bool(t.get("check_hostname", True), f"{key}.check_hostname"),
+        )
+    except ValueError as exc:
+        raise ConfigError(str(exc)) from None
 
 
 _TAG_RE = re.compile(r"\(?\s*([0-9A-Fa-f]{4})\s*,\s*([0-9A-Fa-fxX]{4})\s*\)?")
