@@ -582,7 +582,11 @@ def _register() -> None:
     from quant.registry import METHODS, MethodInfo, register
 
     if "lda" not in METHODS:
-        register(MethodInfo("lda", "Lorentzian difference 3.5 ppm", "%", False, False, 1.5e-4, _lda_percent))
+        # needs_b0=False: the fit places the water line itself (within +-1 ppm), and the
+        # B0-resampled spectra are NaN at the outermost offsets of shifted voxels, which the
+        # MT part of the reference needs
+        register(MethodInfo("lda", "Lorentzian difference 3.5 ppm", "%", False, False, 1.5e-4,
+                            _lda_percent, needs_b0=False))
     if "multi_lorentzian" not in METHODS:
         register(
             MethodInfo(

@@ -1,0 +1,19 @@
+"""The embedded default: `cest-node demo` runs the whole chain on loopback and exits 0."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from node.cli import main
+
+
+def test_demo_runs_end_to_end(tmp_path: Path, capsys):
+    rc = main(["demo", "--out", str(tmp_path / "out"), "--slices", "2", "--size", "40"])
+    out = capsys.readouterr().out
+    assert rc == 0, out
+    assert "research use only" in out
+    assert "primary outputs acknowledged" in out
+    assert "deferred pass (lda): done" in out
+    pngs = list((tmp_path / "out" / "previews").glob("*.png"))
+    assert len(pngs) == 2 * 3  # one Secondary Capture per slice for mtr_asym, apt_star, lda
+    assert len(list((tmp_path / "out").rglob("*.dcm"))) == 3 * (1 + 2 * 2)
