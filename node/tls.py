@@ -20,6 +20,7 @@ from __future__ import annotations
 import ssl
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 __all__ = ["MINIMUM_VERSION", "TlsSettings", "client_context", "server_context"]
 
@@ -73,6 +74,20 @@ def _readable(path: Path | None, what: str) -> str:
     return str(path)
 
 
+class _LazyHandshakeContext(ssl.SSLContext):
+    """A server context whose sockets do their handshake on first use, not when wrapped.
+
+    pynetdicom wraps each accepted socket in its accept loop; with the default
+    ``do_handshake_on_connect=True`` one peer that connects and stays silent would stop every
+    other peer from being accepted. Deferred, the handshake runs in that association's own
+    thread (OpenSSL completes it inside the first read).
+    """
+
+    def wrap_socket(self, sock: Any, *args: Any, **kwargs: Any) -> ssl.SSLSocket:
+        kwargs["do_handshake_on_connect"] = False
+        return super().wrap_socket(sock, *args, **kwargs)
+
+
 def server_context(settings: TlsSettings) -> ssl.SSLContext:
     """The context the receiver wraps accepted sockets with.
 
@@ -81,7 +96,7 @@ def server_context(settings: TlsSettings) -> ssl.SSLContext:
     ValueError
         A certificate, key or CA file is missing or cannot be loaded (the message names it).
     """
-    ctx = ssl.SSLContext(ssl.PROTOCOL_TLS_SERVER)
+    ctx = _LazyHandshakeContext(ssl.PROTOCOL_TLS_SERVER)
     ctx.minimum_version = MINIMUM_VERSION
     cert, key = _readable(settings.cert_file, "cert_file"), _readable(settings.key_file, "key_file")
     try:
