@@ -53,6 +53,8 @@ from pynetdicom import AE, evt
 from pynetdicom.presentation import PresentationContext
 from pynetdicom.sop_class import Verification  # type: ignore[attr-defined]
 
+from node.tls import TlsSettings, client_context
+
 if TYPE_CHECKING:
     from pydicom import Dataset
     from pynetdicom.association import Association
@@ -93,11 +95,12 @@ class DestinationLike(Protocol):
 
 @dataclass(frozen=True)
 class Destination:
-    """A DICOM application entity to send to: ``AE@HOST:PORT``."""
+    """A DICOM application entity to send to: ``AE@HOST:PORT`` (``tls``: over TLS)."""
 
     ae_title: str
     host: str
     port: int
+    tls: bool = False
 
     def __post_init__(self) -> None:
         _check_ae_title(self.ae_title, "ae_title")
@@ -128,7 +131,8 @@ class Destination:
                 )
             return cls(str(value[0]), str(value[1]), value[2])
         try:
-            return cls(value.ae_title, value.host, value.port)
+            return cls(value.ae_title, value.host, value.port,
+                       bool(getattr(value, "tls", False)))
         except AttributeError as exc:
             raise ValueError(
                 f"destination must be (ae_title, host, port) or have those attributes: {exc}"
@@ -170,6 +174,10 @@ class SendSettings:
     guard_reactor_race
         Install :class:`ResponseQueue` on each association (default True; False only to
         measure the library's own behaviour).
+    tls
+        Certificates for destinations with ``tls`` set (:class:`~node.tls.TlsSettings`:
+        ``ca_file`` checks the destination, ``cert_file``/``key_file`` are our client
+        certificate). A TLS destination without them fails permanently.
     """
 
     calling_ae: str = "CESTNODE"
@@ -181,6 +189,7 @@ class SendSettings:
     dimse_timeout_s: float = 3.0
     network_timeout_s: float = 30.0
     guard_reactor_race: bool = True
+    tls: TlsSettings | None = None
 
     def __post_init__(self) -> None:
         _check_ae_title(self.calling_ae, "calling_ae")
@@ -603,9 +612,23 @@ class Sender:
         ]
         still: list[int] = []
         permanent = False
+        tls_args = None
+        if dest.tls:
+            try:
+                if self.settings.tls is None:
+                    raise ValueError("tls: the destination asks for TLS and no [tls] "
+                                     "certificates are configured")
+                tls_args = (client_context(self.settings.tls), dest.host)
+            except ValueError as exc:
+                attempt.error = str(exc)
+                for i in pending:
+                    items[i].detail = attempt.error
+                attempt.elapsed_ms = (time.perf_counter() - t0) * 1000.0
+                LOG.error("send to %s: %s", dest, exc)
+                return attempt, list(pending), True
         assoc = ae.associate(
             dest.host, dest.port, ae_title=dest.ae_title, max_pdu=self.settings.max_pdu,
-            evt_handlers=handlers,
+            evt_handlers=handlers, tls_args=tls_args,
         )
         try:
             attempt.tcp_nodelay = tcp_nodelay_of(assoc)
@@ -618,7 +641,8 @@ class Sender:
                     )
                     permanent = rejection.get("result") == 1
                 elif not connected.is_set():
-                    attempt.error = f"cannot connect to {dest}"
+                    attempt.error = f"cannot connect to {dest}" + (
+                        " (TCP or TLS handshake failed)" if dest.tls else "")
                 elif assoc.is_aborted:
                     attempt.error = f"association aborted by {dest}"
                 else:
@@ -762,10 +786,12 @@ def echo(
     *,
     calling_ae: str = "CESTNODE",
     timeout_s: float = 5.0,
+    tls: TlsSettings | None = None,
 ) -> EchoResult:
     """C-ECHO (Verification, PS3.4 Annex A) to ``ae_title@host:port``.
 
-    Returns an :class:`EchoResult` that is truthy when the peer answered 0x0000.
+    With ``tls`` the association runs over TLS (:func:`node.tls.client_context`). Returns an
+    :class:`EchoResult` that is truthy when the peer answered 0x0000.
     """
     dest = Destination(ae_title, host, port)
     _check_ae_title(calling_ae, "calling_ae")
@@ -777,7 +803,9 @@ def echo(
     ae.add_requested_context(Verification)
     t0 = time.perf_counter()
     handlers: list[Any] = [(evt.EVT_CONN_OPEN, set_tcp_nodelay), (evt.EVT_CONN_OPEN, guard_reactor_race)]
-    assoc = ae.associate(dest.host, dest.port, ae_title=dest.ae_title, evt_handlers=handlers)
+    tls_args = (client_context(tls), dest.host) if tls is not None else None
+    assoc = ae.associate(dest.host, dest.port, ae_title=dest.ae_title, evt_handlers=handlers,
+                         tls_args=tls_args)
     try:
         if not assoc.is_established:
             why = "rejected" if assoc.is_rejected else "aborted" if assoc.is_aborted else "no connection"
