@@ -282,7 +282,8 @@ class Node:
         self.config = config
         self.latency = LatencyLog(config.log_dir)
         self._stop = threading.Event()
-        self.sender = Sender(send_settings or SendSettings(calling_ae=config.ae_title),
+        self.sender = Sender(send_settings or SendSettings(calling_ae=config.ae_title,
+                                                           tls=config.tls),
                              stop=self._stop)
         self.processor = Processor(config, self._deliver, keep_maps=keep_maps)
         self.receiver = Receiver(config, self._on_series)
