@@ -195,6 +195,25 @@ def cmd_check_config(args: argparse.Namespace) -> int:
     return 0
 
 
+# ------------------------------------------------------------------------------ conformance
+def cmd_conformance(args: argparse.Namespace) -> int:
+    from node.config import ConfigError
+    from node.conformance import statement
+
+    try:
+        cfg = _load(args.config) if args.config else None
+    except ConfigError as exc:
+        print(f"cest-node conformance: {exc}", file=sys.stderr)
+        return 1
+    text = statement(cfg)
+    if args.out in (None, "-"):
+        sys.stdout.write(text)
+    else:
+        Path(args.out).write_text(text, encoding="utf-8")
+        print(f"wrote the DICOM Conformance Statement to {args.out}")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     ap = argparse.ArgumentParser(prog="cest-node", description=f"{BANNER} APT/CEST maps from "
                                  "the saturation series, back to the archive.")
@@ -240,13 +259,19 @@ def build_parser() -> argparse.ArgumentParser:
     s = sub.add_parser("check-config", help="validate a config file")
     s.add_argument("file")
     s.set_defaults(func=cmd_check_config)
+
+    s = sub.add_parser("conformance", help="write the DICOM Conformance Statement (Markdown)")
+    s.add_argument("--out", help="file to write (default: standard output)")
+    s.add_argument("--config", help="state this config's values (default: the embedded default)")
+    s.set_defaults(func=cmd_conformance)
     return ap
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     _setup_logging(args.verbose, quiet=args.command in ("demo", "process", "phantom", "echo",
-                                                        "check-config") and args.verbose == 0)
+                                                        "check-config", "conformance", "health")
+                   and args.verbose == 0)
     try:
         return int(args.func(args))
     except KeyboardInterrupt:
