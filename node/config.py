@@ -34,6 +34,7 @@ __all__ = [
     "ConfigError",
     "Destination",
     "MatchRule",
+    "MetricsSettings",
     "NodeConfig",
     "OffsetRule",
     "Protocol",
@@ -215,6 +216,27 @@ class Protocol:
 
 
 @dataclass(frozen=True)
+class MetricsSettings:
+    """The ``[metrics]`` table: an optional Prometheus endpoint, and the start-up calibration.
+
+    Attributes
+    ----------
+    enabled
+        Serve the metrics over HTTP (``/metrics``, Prometheus text format). Off by default.
+    host, port
+        Where the endpoint listens; loopback by default, port 0 lets the OS choose.
+    calibrate
+        Measure this machine's stage costs at start-up (a short warm-up on a small phantom)
+        so that the time budget's predictions fit the machine (:mod:`node.calibrate`).
+    """
+
+    enabled: bool = False
+    host: str = "127.0.0.1"
+    port: int = 9464
+    calibrate: bool = True
+
+
+@dataclass(frozen=True)
 class NodeConfig:
     """The whole node: who it is, who may talk to it, where it sends, what it processes.
 
@@ -253,6 +275,8 @@ class NodeConfig:
         (see the README).
     tls
         TLS certificates and policy (:class:`~node.tls.TlsSettings`), None without TLS.
+    metrics
+        The optional Prometheus endpoint and the start-up calibration (:class:`MetricsSettings`).
     """
 
     ae_title: str = "CESTNODE"
@@ -274,6 +298,7 @@ class NodeConfig:
     max_cols: int = 1024
     max_frames_per_series: int = 4096
     tls: TlsSettings | None = None
+    metrics: MetricsSettings = field(default_factory=lambda: MetricsSettings())
 
     def with_overrides(self, **changes: Any) -> NodeConfig:
         """A copy with some fields replaced (what ``serve --port`` and friends change).
@@ -363,7 +388,7 @@ def parse_config(
         raise ConfigError(f"config: expected a table, got {type(data).__name__}")
     base = Path(base_dir) if base_dir is not None else Path.cwd()
     known = tuple(known_methods) if known_methods is not None else None
-    _only(data, {"node", "destinations", "protocols", "tls"}, "")
+    _only(data, {"node", "destinations", "protocols", "tls", "metrics"}, "")
     node = _table(data.get("node", {}), "node")
     _only(node, {"ae_title", "host", "port", "allowed_calling_aets", "spool_dir", "log_dir",
                  "fsync", "idle_timeout_s", "release_grace_s", "max_pdu",
@@ -406,6 +431,7 @@ def parse_config(
         max_frames_per_series=_int(node.get("max_frames_per_series", 4096),
                                    "node.max_frames_per_series", ge=1),
         tls=tls,
+        metrics=_metrics(data.get("metrics", {}), "metrics"),
     )
 
 
@@ -561,6 +587,17 @@ def _network(value: Any, key: str) -> ipaddress.IPv4Network | ipaddress.IPv6Netw
     except ValueError:
         raise ConfigError(f"{key}: expected an IP address or network like '10.1.2.0/24', "
                           f"got {text!r}") from None
+
+
+def _metrics(value: Any, key: str) -> MetricsSettings:
+    t = _table(value, key)
+    _only(t, {"enabled", "host", "port", "calibrate"}, key)
+    return MetricsSettings(
+        enabled=_bool(t.get("enabled", False), f"{key}.enabled"),
+        host=_str(t.get("host", "127.0.0.1"), f"{key}.host", nonempty=True),
+        port=_port(t.get("port", 9464), f"{key}.port", allow_zero=True),
+        calibrate=_bool(t.get("calibrate", True), f"{key}.calibrate"),
+    )
 
 
 def _tls(value: Any, key: str, base: Path) -> TlsSettings:

@@ -13,18 +13,43 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
+#: The output kinds in build order (node.config.OUTPUT_KINDS; repeated so this module needs no
+#: config import).
+DEFAULT_OUTPUTS: tuple[str, ...] = ("parametric_map", "derived_mr", "secondary_capture")
+
+
+#: Build seconds per slice of each output kind, measured on the 2-core development machine
+#: (20 slices x 128 x 128: Parametric Map ~250 ms, 20 RGB Secondary Captures ~320 ms, 20 derived
+#: MR ~120 ms); the start-up calibration (:mod:`node.calibrate`) replaces them on the machine the
+#: node runs on.
+DEFAULT_BUILD_S_PER_SLICE = {"parametric_map": 0.0125, "secondary_capture": 0.016,
+                             "derived_mr": 0.006}
+
+#: Objects each output kind makes per series: one multi-frame Parametric Map, one image per slice
+#: for the others.
+_PER_SERIES = {"parametric_map": True}
+
+
+def objects_per_kind(kind: str, n_slices: int) -> int:
+    """Objects one method's output of ``kind`` makes for a series of ``n_slices`` slices."""
+    return 1 if _PER_SERIES.get(kind, False) else n_slices
+
 
 @dataclass
 class CostModel:
     """Predicted seconds per stage, calibrated on this machine and refreshed from measurements.
 
-    ``compute_s_per_voxel`` starts from the registry's figure for each method; after each series
-    the measured figure updates it by an exponential moving average (weight ``alpha``), so the
-    prediction follows the machine it runs on.
+    Three parts make a method's predicted cost: compute (``compute_s_per_voxel[method]`` times
+    the brain voxels), build (``build_s_per_slice[kind]`` times the slices, for each output kind)
+    and send (``send_s_per_object`` times the objects). Each starts from a default (the
+    registry's compute figure, :data:`DEFAULT_BUILD_S_PER_SLICE`), is replaced by the start-up
+    calibration and then follows the measured figures of every series by an exponential moving
+    average (weight ``alpha``), so the prediction follows the machine it runs on.
     """
 
     compute_s_per_voxel: dict[str, float] = field(default_factory=dict)
-    output_s_per_slice: float = 0.02
+    build_s_per_slice: dict[str, float] = field(
+        default_factory=lambda: dict(DEFAULT_BUILD_S_PER_SLICE))
     send_s_per_object: float = 0.004
     alpha: float = 0.3
 
@@ -32,23 +57,56 @@ class CostModel:
     def from_registry(cls, methods: Mapping[str, Any]) -> CostModel:
         return cls({name: float(m.cost_s_per_voxel) for name, m in methods.items()})
 
-    def predict(self, method: str, *, n_voxels: int, n_slices: int, n_outputs: int) -> float:
+    def predict_parts(self, method: str, *, n_voxels: int, n_slices: int,
+                      outputs: Sequence[str] = DEFAULT_OUTPUTS) -> dict[str, float]:
+        """Predicted seconds of one method: ``{"compute", "build", "send", "total"}``."""
         per_voxel = self.compute_s_per_voxel.get(method, 1e-6)
-        objects = n_slices * 2 + 1  # derived MR + SC per slice, one Parametric Map
-        return (
-            per_voxel * n_voxels
-            + self.output_s_per_slice * n_slices * max(n_outputs, 1) / 3.0
-            + self.send_s_per_object * objects
-        )
+        compute = per_voxel * max(n_voxels, 0)
+        build = sum(self.build_s_per_slice.get(k, 0.02) * n_slices for k in outputs)
+        objects = sum(objects_per_kind(k, n_slices) for k in outputs)
+        send = self.send_s_per_object * objects
+        return {"compute": compute, "build": build, "send": send,
+                "total": compute + build + send}
+
+    def predict(self, method: str, *, n_voxels: int, n_slices: int, n_outputs: int = 3,
+                outputs: Sequence[str] | None = None) -> float:
+        """Predicted seconds of one method (compute + build + send).
+
+        ``outputs`` names the output kinds; without it, the first ``n_outputs`` of the
+        three kinds are assumed.
+        """
+        kinds = DEFAULT_OUTPUTS[:max(n_outputs, 1)] if outputs is None else outputs
+        return self.predict_parts(method, n_voxels=n_voxels, n_slices=n_slices,
+                                  outputs=kinds)["total"]
+
+    def _blend(self, old: float | None, measured: float) -> float:
+        return measured if old is None else (1 - self.alpha) * old + self.alpha * measured
 
     def learn(self, method: str, *, seconds: float, n_voxels: int) -> None:
+        """Refresh a method's compute cost from one measurement."""
         if n_voxels <= 0 or seconds <= 0:
             return
-        measured = seconds / n_voxels
-        old = self.compute_s_per_voxel.get(method)
-        self.compute_s_per_voxel[method] = (
-            measured if old is None else (1 - self.alpha) * old + self.alpha * measured
-        )
+        self.compute_s_per_voxel[method] = self._blend(
+            self.compute_s_per_voxel.get(method), seconds / n_voxels)
+
+    def learn_build(self, kind: str, *, seconds: float, n_slices: int) -> None:
+        """Refresh an output kind's build cost from one measurement (one method's outputs)."""
+        if n_slices <= 0 or seconds <= 0:
+            return
+        self.build_s_per_slice[kind] = self._blend(self.build_s_per_slice.get(kind),
+                                                   seconds / n_slices)
+
+    def learn_send(self, *, seconds: float, n_objects: int) -> None:
+        """Refresh the send cost per object from one batch (every destination, in parallel)."""
+        if n_objects <= 0 or seconds <= 0:
+            return
+        self.send_s_per_object = self._blend(self.send_s_per_object, seconds / n_objects)
+
+    def snapshot(self) -> dict[str, Any]:
+        """The current figures (for the log and the calibration report)."""
+        return {"compute_s_per_voxel": dict(self.compute_s_per_voxel),
+                "build_s_per_slice": dict(self.build_s_per_slice),
+                "send_s_per_object": self.send_s_per_object}
 
 
 @dataclass
@@ -58,6 +116,8 @@ class Plan:
     deferred: list[str]
     skipped: dict[str, str]
     predicted_s: dict[str, float]
+    #: per method ``{"compute", "build", "send", "total"}`` seconds, as predicted when planned
+    predicted_parts_s: dict[str, dict[str, float]] = field(default_factory=dict)
 
 
 def plan_methods(
@@ -72,10 +132,12 @@ def plan_methods(
     elapsed_s: float,
     have_t1: bool,
     deferred_enabled: bool = True,
+    outputs: Sequence[str] | None = None,
 ) -> Plan:
     """Decide what runs now, what is deferred and what is skipped (with the reason).
 
     ``elapsed_s`` is the time already spent since the last instance when the plan is made.
+    ``outputs`` names the protocol's output kinds (default: the first ``n_outputs`` kinds).
     """
     if not methods:
         raise ValueError("a protocol needs at least one method (the first is the primary)")
@@ -84,6 +146,8 @@ def plan_methods(
     deferred: list[str] = []
     skipped: dict[str, str] = {}
     predicted: dict[str, float] = {}
+    parts: dict[str, dict[str, float]] = {}
+    kinds = tuple(DEFAULT_OUTPUTS[:max(n_outputs, 1)] if outputs is None else outputs)
     left = budget_s - elapsed_s
     for i, name in enumerate(methods):
         info = registry.get(name)
@@ -99,8 +163,10 @@ def plan_methods(
             else:
                 skipped[name] = "model-based methods are switched off for this protocol"
             continue
-        p = cost.predict(name, n_voxels=n_voxels, n_slices=n_slices, n_outputs=n_outputs)
+        part = cost.predict_parts(name, n_voxels=n_voxels, n_slices=n_slices, outputs=kinds)
+        p = part["total"]
         predicted[name] = round(p, 4)
+        parts[name] = {k: round(v, 4) for k, v in part.items()}
         if i == 0 or name == primary:
             run.append(name)
             left -= p
@@ -118,4 +184,4 @@ def plan_methods(
         reason = skipped.get(primary, "not model-free")
         raise ValueError(f"primary method {primary!r} cannot run: {reason}")
     return Plan(primary=primary, run=run, deferred=deferred, skipped=skipped,
-                predicted_s=predicted)
+                predicted_s=predicted, predicted_parts_s=parts)
