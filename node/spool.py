@@ -24,7 +24,7 @@ from pathlib import Path
 
 __all__ = ["SCHEMA_VERSION", "SeriesRecord", "Spool", "SpoolError", "instance_hash"]
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 """Version of the index schema (``PRAGMA user_version``)."""
 
 # version -> SQL that brings a database from version-1 to version
@@ -50,10 +50,44 @@ _MIGRATIONS: dict[int, str] = {
     );
     CREATE INDEX IF NOT EXISTS series_state ON series(state);
     """,
+    # 2: what became of each series after release, and the outbox (node.outbox): every derived
+    # object built (its file under spool_dir/outbox) and its send state per destination
+    2: """
+    ALTER TABLE series ADD COLUMN deferred TEXT NOT NULL DEFAULT '';
+    ALTER TABLE series ADD COLUMN error TEXT NOT NULL DEFAULT '';
+    ALTER TABLE series ADD COLUMN processed_at REAL;
+    CREATE TABLE IF NOT EXISTS outputs (
+        sop_uid      TEXT PRIMARY KEY,
+        series_key   TEXT NOT NULL,
+        method       TEXT NOT NULL,
+        sop_class    TEXT NOT NULL,
+        series_uid   TEXT NOT NULL,
+        path         TEXT NOT NULL,
+        built_at     REAL NOT NULL
+    );
+    CREATE INDEX IF NOT EXISTS outputs_series ON outputs(series_key);
+    CREATE TABLE IF NOT EXISTS sends (
+        sop_uid      TEXT NOT NULL,
+        destination  TEXT NOT NULL,
+        state        TEXT NOT NULL,
+        attempts     INTEGER NOT NULL DEFAULT 0,
+        first_at     REAL NOT NULL,
+        next_at      REAL,
+        updated_at   REAL NOT NULL,
+        status       INTEGER,
+        detail       TEXT NOT NULL DEFAULT '',
+        PRIMARY KEY (sop_uid, destination)
+    );
+    CREATE INDEX IF NOT EXISTS sends_state ON sends(state, next_at);
+    """,
 }
 
-SERIES_STATES = ("receiving", "complete", "incomplete", "held", "ignored")
-"""States this module knows; later stages add their own (processed, sent, failed)."""
+SERIES_STATES = ("receiving", "complete", "incomplete", "held", "ignored", "deferring",
+                 "processed", "failed")
+"""Series states: ``receiving`` until the assembler releases it (``complete`` or
+``incomplete``) or holds it (``held``); then ``deferring`` (budget-bound outputs built, the
+model-based methods in ``deferred`` still to run), ``processed`` (every output built; their
+sends are in the outbox) or ``failed`` (processing raised; ``error`` says why)."""
 
 
 class SpoolError(OSError):
@@ -221,6 +255,26 @@ class Spool:
         with self._lock:
             self._db.execute("UPDATE series SET state = ?, detail = ?, updated_at = ? "
                              "WHERE key = ?", (state, detail, time.time(), series_key))
+
+    def mark_processed(self, series_key: str, state: str, *, deferred: tuple[str, ...] = (),
+                       error: str = "") -> None:
+        """Record the end of a processing pass: ``deferring`` (with the model-based methods
+        still to run), ``processed`` or ``failed`` (with the error); one atomic update that
+        keeps the receiver's ``detail``."""
+        if state not in ("deferring", "processed", "failed"):
+            raise ValueError(f"state: expected deferring, processed or failed, got {state!r}")
+        now = time.time()
+        with self._lock:
+            self._db.execute("UPDATE series SET state = ?, deferred = ?, error = ?, "
+                             "processed_at = ?, updated_at = ? WHERE key = ?",
+                             (state, ",".join(deferred), error[:500], now, now, series_key))
+
+    def deferred_methods(self, series_key: str) -> tuple[str, ...]:
+        """The model-based methods a ``deferring`` series still has to run."""
+        with self._lock:
+            row = self._db.execute("SELECT deferred FROM series WHERE key = ?",
+                                   (series_key,)).fetchone()
+        return tuple(m for m in (row[0] if row else "").split(",") if m)
 
     def series(self, series_key: str) -> SeriesRecord | None:
         """The index row of one series, or None."""
