@@ -42,6 +42,7 @@ from typing import Any
 
 import numpy as np
 from pydicom import Dataset, dcmread
+from pydicom.datadict import dictionary_VR
 from pydicom.uid import (
     EnhancedMRImageStorage,
     ExplicitVRLittleEndian,
@@ -86,6 +87,78 @@ def _status(code: int, comment: str = "") -> Dataset:
     if comment:
         ds.ErrorComment = comment[:64]  # LO: at most 64 characters
     return ds
+
+
+# explicit VR with a 2-byte reserved field and a 4-byte length (PS3.5 7.1.2, Table 7.1-1)
+_LONG_VRS = frozenset(b"OB OD OF OL OV OW SQ SV UC UN UR UT UV".split())
+_ITEM, _ITEM_END, _SEQ_END = 0xFFFEE000, 0xFFFEE00D, 0xFFFEE0DD
+_UNDEFINED = 0xFFFFFFFF
+
+
+def framing_problem(data: bytes | memoryview, *, implicit: bool) -> str:
+    """Why the bytes of a little-endian data set do not form a whole chain of elements.
+
+    pydicom decodes a truncated data set without complaint (a cut inside an element header
+    ends the data set, a cut inside a value shortens it), so the receiver checks the framing
+    itself: every element header and value must fit, items and sequences of undefined length
+    must end with their delimiters (PS3.5 7.1 and 7.5), and the last element must end exactly
+    at the end of the data. Returns ``""`` when the framing is whole.
+    """
+    buf = memoryview(data)
+    try:
+        end = _walk(buf, 0, len(buf), implicit=implicit, until=None)
+    except ValueError as exc:
+        return str(exc)
+    return "" if end == len(buf) else f"{len(buf) - end} stray bytes after the last element"
+
+
+def _walk(buf: memoryview, pos: int, end: int, *, implicit: bool, until: int | None) -> int:
+    """Skip elements from ``pos``; stop at ``end`` or after the delimiter tag ``until``."""
+    while pos < end:
+        if end - pos < 8:
+            raise ValueError(f"element header cut short at byte {pos}")
+        group, elem = int.from_bytes(buf[pos:pos + 2], "little"), int.from_bytes(
+            buf[pos + 2:pos + 4], "little")
+        tag = group << 16 | elem
+        if tag in (_ITEM_END, _SEQ_END):
+            pos += 8
+            if tag != until:
+                raise ValueError(f"unexpected delimiter at byte {pos - 8}")
+            return pos
+        if implicit or group == 0xFFFE:
+            vr, length, pos = b"", int.from_bytes(buf[pos + 4:pos + 8], "little"), pos + 8
+        else:
+            vr = bytes(buf[pos + 4:pos + 6])
+            if vr in _LONG_VRS:
+                if end - pos < 12:
+                    raise ValueError(f"element header cut short at byte {pos}")
+                length, pos = int.from_bytes(buf[pos + 8:pos + 12], "little"), pos + 12
+            else:
+                length, pos = int.from_bytes(buf[pos + 6:pos + 8], "little"), pos + 8
+        if length == _UNDEFINED:
+            # a sequence (or item, or encapsulated pixel data) closed by a delimiter
+            if tag == _ITEM:
+                pos = _walk(buf, pos, end, implicit=implicit, until=_ITEM_END)
+            else:
+                pos = _walk(buf, pos, end, implicit=implicit if vr != b"UN" else True,
+                            until=_SEQ_END)
+            continue
+        if length > end - pos:
+            raise ValueError(f"element ({group:04X},{elem:04X}) value cut short: {length} "
+                             f"bytes declared, {end - pos} left")
+        if tag == _ITEM or vr == b"SQ" or (implicit and _is_sequence(tag)):
+            _walk(buf, pos, pos + length, implicit=implicit, until=None)
+        pos += length
+    if until is not None:
+        raise ValueError("data set ends before a sequence or item delimiter")
+    return pos
+
+
+def _is_sequence(tag: int) -> bool:
+    try:
+        return str(dictionary_VR(tag)) == "SQ"
+    except KeyError:
+        return False
 
 
 class Receiver:
@@ -271,6 +344,18 @@ class Receiver:
                    for a, b in zip(first.frames, prep.frames, strict=True))
 
     def _on_store(self, event: Any) -> Dataset | int:
+        try:
+            raw = event.request.DataSet.getbuffer()
+            try:
+                broken = framing_problem(raw,
+                                         implicit=event.context.transfer_syntax.is_implicit_VR)
+            finally:
+                raw.release()
+        except Exception as exc:
+            broken = f"no data set ({type(exc).__name__})"
+        if broken:
+            log.warning("C-STORE: data set refused, %s", broken)
+            return _status(STATUS_CANNOT_UNDERSTAND, f"truncated or malformed: {broken}")
         try:
             ds = event.dataset
             ds.file_meta = event.file_meta
