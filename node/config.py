@@ -30,7 +30,9 @@ from pydicom.datadict import tag_for_keyword
 from node.tls import TlsSettings
 
 __all__ = [
+    "COMPANION_KINDS",
     "OUTPUT_KINDS",
+    "CompanionRule",
     "ConfigError",
     "Destination",
     "MatchRule",
@@ -145,6 +147,52 @@ class OffsetRule:
         return f"{where} in {self.unit}" + (" via regex" if self.regex else "")
 
 
+COMPANION_KINDS = ("m0", "wassr", "t1", "b1")
+"""Companion series kinds (:class:`CompanionRule`)."""
+
+
+@dataclass(frozen=True)
+class CompanionRule:
+    """A companion series of the same study that a protocol awaits (``[[protocols.companions]]``).
+
+    Attributes
+    ----------
+    kind
+        ``"m0"`` (a separate unsaturated reference), ``"wassr"`` (a B0 series near water),
+        ``"t1"`` (a T1 map) or ``"b1"`` (a B1 map), see :data:`COMPANION_KINDS`.
+    match
+        Which series of the study it is (:class:`MatchRule`).
+    timeout_s
+        Seconds the saturation series waits for it after completing (it may also have come
+        before); then the series goes on without it.
+    unit
+        Pixel values after the Modality LUT times ``scale``: T1 ``"s"`` or ``"ms"``; B1
+        ``"relative"`` (1 = nominal) or ``"percent"`` (100 = nominal). A Real World Value
+        Mapping in the instances with a known unit wins over both.
+    scale
+        Factor applied to the pixel values before ``unit`` (T1 and B1).
+    offset
+        Where each WASSR frame's offset is (:class:`OffsetRule`), WASSR only.
+    wassr_method
+        ``"symmetry"`` or ``"lorentzian"`` (:func:`quant.wassr.wassr_shift`), WASSR only.
+    b1_tolerance
+        Voxels whose relative B1 differs from 1 by more than this are flagged (B1 only).
+    slice_tolerance_mm
+        A companion slice serves a saturation slice when their positions along the slice
+        normal differ by at most this.
+    """
+
+    kind: Literal["m0", "wassr", "t1", "b1"]
+    match: MatchRule
+    timeout_s: float = 60.0
+    unit: str = ""
+    scale: float = 1.0
+    offset: OffsetRule | None = None
+    wassr_method: Literal["symmetry", "lorentzian"] = "symmetry"
+    b1_tolerance: float = 0.2
+    slice_tolerance_mm: float = 0.5
+
+
 @dataclass(frozen=True)
 class Protocol:
     """How one kind of saturation series is recognised, assembled and processed.
@@ -173,6 +221,15 @@ class Protocol:
         Main field (T), saturation amplitude (uT), saturation duration (s).
     model_based
         Run the protocol's model-based methods in the deferred pass (False: skip them).
+    companions
+        :class:`CompanionRule` s: other series of the same study (M0, WASSR, T1 map, B1 map)
+        awaited after the saturation series completes (:mod:`node.companion`).
+    motion_correction
+        Register every frame to the M0 (rigid, in-plane) before normalisation
+        (:func:`quant.motion.register_frames`). Off by default: with a still subject the
+        registration only adds interpolation, and it costs time inside the budget.
+    motion_rotation
+        Also estimate an in-plane rotation (slower; translation only when False).
     """
 
     name: str
@@ -191,6 +248,13 @@ class Protocol:
     b1_ut: float = 1.0
     tsat_s: float = 2.0
     model_based: bool = True
+    companions: tuple[CompanionRule, ...] = ()
+    motion_correction: bool = False
+    motion_rotation: bool = False
+
+    def companion(self, kind: str) -> CompanionRule | None:
+        """The companion rule of this kind, or None when the protocol has none."""
+        return next((c for c in self.companions if c.kind == kind), None)
 
     @property
     def primary_method(self) -> str:
@@ -706,7 +770,8 @@ def _protocol(value: Any, key: str, known_methods: tuple[str, ...] | None) -> Pr
     _only(t, {"name", "match", "offset", "expected_frames", "expected_offsets",
               "expected_slices", "m0_threshold_ppm", "required_offsets_ppm",
               "required_tolerance_ppm", "methods", "outputs", "budget_s", "field_t", "b1_ut",
-              "tsat_s", "model_based"}, key)
+              "tsat_s", "model_based", "companions", "motion_correction",
+              "motion_rotation"}, key)
     for k in ("name", "match", "offset"):
         if k not in t:
             raise ConfigError(f"{key}.{k}: required")
@@ -781,4 +846,78 @@ def _protocol(value: Any, key: str, known_methods: tuple[str, ...] | None) -> Pr
         b1_ut=_number(t.get("b1_ut", 1.0), f"{key}.b1_ut", gt=0),
         tsat_s=_number(t.get("tsat_s", 2.0), f"{key}.tsat_s", gt=0),
         model_based=_bool(t.get("model_based", True), f"{key}.model_based"),
+        companions=_companions(t.get("companions", []), f"{key}.companions"),
+        motion_correction=_bool(t.get("motion_correction", False), f"{key}.motion_correction"),
+        motion_rotation=_bool(t.get("motion_rotation", False), f"{key}.motion_rotation"),
     )
+
+
+_COMPANION_UNITS = {"t1": ("s", "ms"), "b1": ("relative", "percent")}
+
+
+def _match(value: Any, key: str) -> MatchRule:
+    t = _table(value, key)
+    _only(t, {"attribute", "regex"}, key)
+    for k in ("attribute", "regex"):
+        if k not in t:
+            raise ConfigError(f"{key}.{k}: required")
+    return MatchRule(_keyword(t["attribute"], f"{key}.attribute"),
+                     _regex(t["regex"], f"{key}.regex"))
+
+
+def _companions(value: Any, key: str) -> tuple[CompanionRule, ...]:
+    out: list[CompanionRule] = []
+    for i, raw in enumerate(_array(value, key)):
+        k = f"{key}[{i}]"
+        t = _table(raw, k)
+        _only(t, {"kind", "match", "timeout_s", "unit", "scale", "offset", "wassr_method",
+                  "b1_tolerance", "slice_tolerance_mm"}, k)
+        for req in ("kind", "match"):
+            if req not in t:
+                raise ConfigError(f"{k}.{req}: required")
+        kind = _str(t["kind"], f"{k}.kind")
+        if kind not in COMPANION_KINDS:
+            raise ConfigError(f"{k}.kind: expected one of {', '.join(COMPANION_KINDS)}, "
+                              f"got {kind!r}")
+        if any(c.kind == kind for c in out):
+            raise ConfigError(f"{k}.kind: a second {kind!r} companion (one per kind)")
+        units = _COMPANION_UNITS.get(kind)
+        if units is None:
+            for extra in ("unit", "scale"):
+                if extra in t:
+                    raise ConfigError(f"{k}.{extra}: only used with kind 't1' or 'b1'")
+            unit = ""
+        else:
+            unit = _str(t.get("unit", units[0]), f"{k}.unit")
+            if unit not in units:
+                raise ConfigError(f"{k}.unit: expected {' or '.join(map(repr, units))} for "
+                                  f"kind {kind!r}, got {unit!r}")
+        if kind == "wassr":
+            if "offset" not in t:
+                raise ConfigError(f"{k}.offset: required for kind 'wassr' (where each "
+                                  "frame's offset is)")
+            offset: OffsetRule | None = _offset_rule(t["offset"], f"{k}.offset")
+            method = _str(t.get("wassr_method", "symmetry"), f"{k}.wassr_method")
+            if method not in ("symmetry", "lorentzian"):
+                raise ConfigError(f"{k}.wassr_method: expected 'symmetry' or 'lorentzian', "
+                                  f"got {method!r}")
+        else:
+            for extra in ("offset", "wassr_method"):
+                if extra in t:
+                    raise ConfigError(f"{k}.{extra}: only used with kind 'wassr'")
+            offset, method = None, "symmetry"
+        if "b1_tolerance" in t and kind != "b1":
+            raise ConfigError(f"{k}.b1_tolerance: only used with kind 'b1'")
+        out.append(CompanionRule(
+            kind=kind,  # type: ignore[arg-type]
+            match=_match(t["match"], f"{k}.match"),
+            timeout_s=_number(t.get("timeout_s", 60.0), f"{k}.timeout_s", ge=0),
+            unit=unit,
+            scale=_number(t.get("scale", 1.0), f"{k}.scale", gt=0),
+            offset=offset,
+            wassr_method=method,  # type: ignore[arg-type]
+            b1_tolerance=_number(t.get("b1_tolerance", 0.2), f"{k}.b1_tolerance", gt=0),
+            slice_tolerance_mm=_number(t.get("slice_tolerance_mm", 0.5),
+                                       f"{k}.slice_tolerance_mm", gt=0),
+        ))
+    return tuple(out)
