@@ -36,6 +36,36 @@ def series_key(study_uid: str, series_uid: str) -> str:
 
 
 @dataclass
+class Companion:
+    """A companion series (M0, WASSR, T1 map, B1 map) placed in the saturation series' geometry.
+
+    Attributes
+    ----------
+    kind
+        ``"m0"``, ``"wassr"``, ``"t1"`` or ``"b1"``.
+    values
+        float32 in the saturation series' slice order and matrix: ``(slices, rows, cols)``
+        for M0 (signal), T1 (seconds) and B1 (relative, 1 = nominal); ``(slices, rows, cols,
+        n_offsets)`` for WASSR (signal, columns in ``offsets_ppm`` order).
+    offsets_ppm
+        WASSR only: the sorted offsets of the columns (M0 frames left out); else None.
+    unit
+        ``"s"`` (T1), ``"1"`` (relative B1), ``""`` (signal).
+    key
+        Pseudonymous key of the companion series.
+    detail
+        How the values were read (unit source, slices matched), for logs.
+    """
+
+    kind: str
+    values: np.ndarray
+    offsets_ppm: np.ndarray | None = None
+    unit: str = ""
+    key: str = ""
+    detail: str = ""
+
+
+@dataclass
 class AssembledSeries:
     """A saturation series ready for computation.
 
@@ -65,6 +95,11 @@ class AssembledSeries:
     clock
         Times (seconds, ``time.time()``) of events: ``first_instance``, ``last_instance``,
         ``complete``.
+    companions
+        Companion series of the protocol that arrived in time, by kind (:class:`Companion`,
+        in this series' slice geometry; slices matched by position along the normal).
+    companion_notes
+        Why a configured companion is absent (not arrived, geometry differs), one line each.
     """
 
     key: str
@@ -77,6 +112,8 @@ class AssembledSeries:
     missing: str = ""
     clock: dict[str, float] = field(default_factory=dict)
     instance_count: int = 0
+    companions: dict[str, Companion] = field(default_factory=dict)
+    companion_notes: list[str] = field(default_factory=list)
 
 
 @dataclass
