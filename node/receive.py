@@ -204,6 +204,8 @@ class Receiver:
         self.port: int | None = None
         self.flags: dict[str, list[str]] = {}
         """Series key -> why it was flagged (refused or conflicting instances)."""
+        self.on_status: Callable[[int], None] | None = None
+        """Called with the status code of every C-STORE response (the node's metrics)."""
 
     # ------------------------------------------------------------------ lifecycle
     def start(self) -> Receiver:
@@ -223,7 +225,7 @@ class Receiver:
         handlers: list[Any] = [
             (evt.EVT_CONN_OPEN, self._on_conn_open),
             (evt.EVT_REQUESTED, self._on_requested),
-            (evt.EVT_C_STORE, self._on_store),
+            (evt.EVT_C_STORE, self._on_store_observed),
             (evt.EVT_C_ECHO, self._on_echo),
             (evt.EVT_RELEASED, self._on_assoc_end),
             (evt.EVT_ABORTED, self._on_assoc_end),
@@ -342,6 +344,15 @@ class Receiver:
         return all(a.offset_ppm == b.offset_ppm and a.position_mm == b.position_mm
                    and np.array_equal(a.pixels, b.pixels)
                    for a, b in zip(first.frames, prep.frames, strict=True))
+
+    def _on_store_observed(self, event: Any) -> Dataset | int:
+        status = self._on_store(event)
+        if self.on_status is not None:
+            try:
+                self.on_status(status if isinstance(status, int) else int(status.Status))
+            except Exception:  # an observer never changes the answer to the peer
+                log.exception("C-STORE status observer failed")
+        return status
 
     def _on_store(self, event: Any) -> Dataset | int:
         try:

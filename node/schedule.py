@@ -18,12 +18,13 @@ from typing import Any
 DEFAULT_OUTPUTS: tuple[str, ...] = ("parametric_map", "derived_mr", "secondary_capture")
 
 
-#: Build seconds per slice of each output kind, measured on the 2-core development machine
-#: (20 slices x 128 x 128: Parametric Map ~250 ms, 20 RGB Secondary Captures ~320 ms, 20 derived
-#: MR ~120 ms); the start-up calibration (:mod:`node.calibrate`) replaces them on the machine the
-#: node runs on.
-DEFAULT_BUILD_S_PER_SLICE = {"parametric_map": 0.0125, "secondary_capture": 0.016,
-                             "derived_mr": 0.006}
+#: Build seconds of each output kind: a fixed part per series plus a part per slice, measured on
+#: the 2-core development machine (128 x 128 slices, 1 to 20 of them: Parametric Map 17 ms + 2.3
+#: ms per slice, RGB Secondary Capture 14-21 ms per slice, derived MR 1-3 ms per slice); the
+#: start-up calibration (:mod:`node.calibrate`) replaces them on the machine the node runs on.
+DEFAULT_BUILD_S_FIXED = {"parametric_map": 0.015, "secondary_capture": 0.0, "derived_mr": 0.0}
+DEFAULT_BUILD_S_PER_SLICE = {"parametric_map": 0.0025, "secondary_capture": 0.015,
+                             "derived_mr": 0.003}
 
 #: Objects each output kind makes per series: one multi-frame Parametric Map, one image per slice
 #: for the others.
@@ -40,8 +41,8 @@ class CostModel:
     """Predicted seconds per stage, calibrated on this machine and refreshed from measurements.
 
     Three parts make a method's predicted cost: compute (``compute_s_per_voxel[method]`` times
-    the brain voxels), build (``build_s_per_slice[kind]`` times the slices, for each output kind)
-    and send (``send_s_per_object`` times the objects). Each starts from a default (the
+    the brain voxels), build (``build_s_fixed[kind]`` plus ``build_s_per_slice[kind]`` times the
+    slices, for each output kind) and send (``send_s_per_object`` times the objects). Each starts from a default (the
     registry's compute figure, :data:`DEFAULT_BUILD_S_PER_SLICE`), is replaced by the start-up
     calibration and then follows the measured figures of every series by an exponential moving
     average (weight ``alpha``), so the prediction follows the machine it runs on.
@@ -50,6 +51,7 @@ class CostModel:
     compute_s_per_voxel: dict[str, float] = field(default_factory=dict)
     build_s_per_slice: dict[str, float] = field(
         default_factory=lambda: dict(DEFAULT_BUILD_S_PER_SLICE))
+    build_s_fixed: dict[str, float] = field(default_factory=lambda: dict(DEFAULT_BUILD_S_FIXED))
     send_s_per_object: float = 0.004
     alpha: float = 0.3
 
@@ -62,7 +64,8 @@ class CostModel:
         """Predicted seconds of one method: ``{"compute", "build", "send", "total"}``."""
         per_voxel = self.compute_s_per_voxel.get(method, 1e-6)
         compute = per_voxel * max(n_voxels, 0)
-        build = sum(self.build_s_per_slice.get(k, 0.02) * n_slices for k in outputs)
+        build = sum(self.build_s_fixed.get(k, 0.0) + self.build_s_per_slice.get(k, 0.02) * n_slices
+                    for k in outputs)
         objects = sum(objects_per_kind(k, n_slices) for k in outputs)
         send = self.send_s_per_object * objects
         return {"compute": compute, "build": build, "send": send,
@@ -90,11 +93,12 @@ class CostModel:
             self.compute_s_per_voxel.get(method), seconds / n_voxels)
 
     def learn_build(self, kind: str, *, seconds: float, n_slices: int) -> None:
-        """Refresh an output kind's build cost from one measurement (one method's outputs)."""
+        """Refresh an output kind's build cost per slice from one measurement (one method's
+        outputs of that kind); the fixed part stays as calibrated."""
         if n_slices <= 0 or seconds <= 0:
             return
-        self.build_s_per_slice[kind] = self._blend(self.build_s_per_slice.get(kind),
-                                                   seconds / n_slices)
+        per_slice = max(seconds - self.build_s_fixed.get(kind, 0.0), 0.0) / n_slices
+        self.build_s_per_slice[kind] = self._blend(self.build_s_per_slice.get(kind), per_slice)
 
     def learn_send(self, *, seconds: float, n_objects: int) -> None:
         """Refresh the send cost per object from one batch (every destination, in parallel)."""
@@ -105,6 +109,7 @@ class CostModel:
     def snapshot(self) -> dict[str, Any]:
         """The current figures (for the log and the calibration report)."""
         return {"compute_s_per_voxel": dict(self.compute_s_per_voxel),
+                "build_s_fixed": dict(self.build_s_fixed),
                 "build_s_per_slice": dict(self.build_s_per_slice),
                 "send_s_per_object": self.send_s_per_object}
 
