@@ -43,6 +43,13 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
     cfg = _load(args.config, port=args.port, ae_title=args.ae_title, spool_dir=args.spool,
                 log_dir=args.log_dir, destinations=args.dest or None)
+    from node.health import format_report, self_test
+
+    checks = self_test()  # the numbers must be right on this machine before a scan
+    if not all(c.ok for c in checks):
+        print(f"cest-node serve: the numeric self-test failed; not starting\n"
+              f"{format_report(checks)}", file=sys.stderr)
+        return 1
     stop = threading.Event()
 
     def on_signal(signum: int, frame: object) -> None:
@@ -71,6 +78,14 @@ def _read_paths(paths: Sequence[str]) -> list[Path]:
 
 
 def cmd_process(args: argparse.Namespace) -> int:
+    if args.query or args.dask:  # archive query and/or the distributed engine (node.retro)
+        from node.retro import cli_process
+
+        return cli_process(args, _load(args.config), _read_paths)
+    if not args.paths:
+        print("cest-node process: give PATH... or --query --archive AE@HOST:PORT",
+              file=sys.stderr)
+        return 2
     from pydicom import dcmread
     from pydicom.errors import InvalidDicomError
 
@@ -79,6 +94,9 @@ def cmd_process(args: argparse.Namespace) -> int:
     from node.timing import LatencyLog
     from node.types import AssembledSeries, OutputBatch
 
+    if not args.out:
+        print("cest-node process: --out is required with PATH", file=sys.stderr)
+        return 2
     out = Path(args.out)
     cfg = _load(args.config, log_dir=str(out / "logs"), spool_dir=str(out / "spool"))
     written: dict[str, int] = {}
@@ -214,6 +232,21 @@ def cmd_conformance(args: argparse.Namespace) -> int:
     return 0
 
 
+# ------------------------------------------------------------------------------ health
+def cmd_health(args: argparse.Namespace) -> int:
+    from node.config import ConfigError
+    from node.health import format_report, run_health
+
+    try:
+        cfg = _load(args.config)
+    except ConfigError as exc:
+        print(f"cest-node health: {exc}", file=sys.stderr)
+        return 2
+    checks = run_health(cfg, numeric=not args.no_self_test)
+    print(format_report(checks))
+    return 0 if all(c.ok for c in checks) else 1
+
+
 def build_parser() -> argparse.ArgumentParser:
     ap = argparse.ArgumentParser(prog="cest-node", description=f"{BANNER} APT/CEST maps from "
                                  "the saturation series, back to the archive.")
@@ -231,10 +264,23 @@ def build_parser() -> argparse.ArgumentParser:
                    help="destination (repeatable; replaces the config's destinations)")
     s.set_defaults(func=cmd_serve)
 
-    s = sub.add_parser("process", help="process DICOM files offline")
-    s.add_argument("paths", nargs="+", metavar="PATH")
-    s.add_argument("--out", required=True, help="folder for the derived objects")
+    s = sub.add_parser("process", help="process DICOM files offline, or studies from an archive")
+    s.add_argument("paths", nargs="*", metavar="PATH")
+    s.add_argument("--out", help="folder for the derived objects (required with PATH)")
     s.add_argument("--config")
+    s.add_argument("--query", action="store_true",
+                   help="query --archive for studies instead of reading files")
+    s.add_argument("--archive", metavar="AE@HOST:PORT", help="archive to C-FIND and C-GET")
+    s.add_argument("--protocol", help="protocol of the config (default: the first)")
+    s.add_argument("--since", metavar="YYYYMMDD", help="first StudyDate (inclusive)")
+    s.add_argument("--until", metavar="YYYYMMDD", help="last StudyDate (inclusive)")
+    s.add_argument("--store-to", metavar="AE@HOST:PORT",
+                   help="where results go (default: the archive)")
+    s.add_argument("--force", action="store_true",
+                   help="reprocess studies whose results are already in the archive")
+    s.add_argument("--dask", metavar="SCHEDULER",
+                   help="spread series and fit chunks over a Dask cluster: a scheduler "
+                        "address (tcp://HOST:8786) or 'local'")
     s.set_defaults(func=cmd_process)
 
     s = sub.add_parser("demo", help="node + embedded archive + phantom scanner on loopback")
@@ -264,6 +310,11 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--out", help="file to write (default: standard output)")
     s.add_argument("--config", help="state this config's values (default: the embedded default)")
     s.set_defaults(func=cmd_conformance)
+
+    s = sub.add_parser("health", help="spool, index, destinations, latency and numeric self-test")
+    s.add_argument("--config", help="TOML config (default: the embedded default)")
+    s.add_argument("--no-self-test", action="store_true", help="skip the numeric self-test")
+    s.set_defaults(func=cmd_health)
     return ap
 
 

@@ -88,7 +88,7 @@ def scu_storage_contexts() -> list[tuple[str, UID, list[UID]]]:
     rows = []
     for kind, datasets in _sample_outputs().items():
         for cx in build_contexts(datasets):
-            rows.append((kind, UID(cx.abstract_syntax), [UID(t) for t in cx.transfer_syntax]))
+            rows.append((kind, UID(str(cx.abstract_syntax)), [UID(t) for t in cx.transfer_syntax]))
     return rows
 
 
@@ -155,6 +155,7 @@ def statement(config: NodeConfig | None = None) -> str:
     pdu = f"{cfg.max_pdu} bytes" if cfg.max_pdu else "unlimited (0)"
     L: list[str] = []
     add = L.append
+    rows: list[tuple[str, ...]] = []
 
     add(f"# cest-node {version}: DICOM Conformance Statement")
     add("")

@@ -151,7 +151,7 @@ class ArchiveClient:
 
     def _associate(self, handlers: list[Any] | None = None) -> Any:
         ae = self._ae()
-        roles = [build_role(cls, scp_role=True) for cls in RETRIEVE_STORAGE_CLASSES]
+        roles: list[Any] = [build_role(cls, scp_role=True) for cls in RETRIEVE_STORAGE_CLASSES]
         a = self.archive
         assoc = ae.associate(a.host, a.port, ae_title=a.ae_title, ext_neg=roles,
                              evt_handlers=[(evt.EVT_CONN_OPEN, set_tcp_nodelay),
@@ -405,3 +405,82 @@ def format_table(results: Sequence[StudyResult]) -> str:
     lines.append(f"{len(results)} studies: {counts[PROCESSED]} processed, {counts[SKIPPED]} "
                  f"skipped, {counts[FAILED]} failed")
     return "\n".join(lines)
+
+
+def cli_process(args: Any, config: NodeConfig,
+                read_paths: Callable[[Sequence[str]], list[Any]]) -> int:
+    """``cest-node process`` with ``--query`` and/or ``--dask`` (called by node.cli)."""
+    import sys
+
+    from node.config import ConfigError
+
+    client = None
+    try:
+        if args.dask:
+            from node.distributed import DaskEngine, connect
+
+            client = connect(args.dask)
+        if args.query:
+            if not args.archive:
+                raise ValueError("--query needs --archive AE@HOST:PORT")
+            if args.paths:
+                raise ValueError("give either PATH... or --query, not both")
+            name = args.protocol or (config.protocols[0].name if config.protocols else "")
+            query = Query(Destination.parse(args.archive), name,
+                          parse_date(args.since, key="--since"),
+                          parse_date(args.until, key="--until"))
+            cfg = config.with_overrides(protocols=(config.protocol(name),))
+            engine = DaskEngine(client, cfg) if client is not None else None
+            results = run_query(cfg, query, engine=engine, force=args.force,
+                                store_to=Destination.parse(args.store_to) if args.store_to
+                                else None)
+            print(format_table(results))
+            return 0 if all(r.status != FAILED for r in results) else 1
+        return _process_files(args, config, read_paths, client)
+    except (ValueError, ConfigError, RetroError) as exc:
+        print(f"cest-node process: {exc}", file=sys.stderr)
+        return 2
+    finally:
+        if client is not None:
+            cluster = getattr(client, "cluster", None)
+            client.close()
+            if cluster is not None:
+                cluster.close()
+
+
+def _process_files(args: Any, config: NodeConfig, read_paths: Callable[[Sequence[str]], list[Any]],
+                   client: Any) -> int:
+    """Files through the distributed engine, written under ``--out`` like the local run."""
+    from pathlib import Path
+
+    from pydicom import dcmread
+    from pydicom.errors import InvalidDicomError
+
+    from node.distributed import DaskEngine
+    from node.service import write_datasets
+
+    if not args.paths or not args.out:
+        raise ValueError("give PATH... and --out (or --query --archive AE@HOST:PORT)")
+    out = Path(args.out)
+    datasets = []
+    for f in read_paths(args.paths):
+        try:
+            datasets.append(dcmread(f))
+        except (InvalidDicomError, OSError, ValueError) as exc:
+            log.warning("skipped a file: not a readable DICOM file (%s)", type(exc).__name__)
+    series = assemble(config, datasets)
+    written: dict[str, int] = {}
+
+    def deliver(batch: OutputBatch) -> bool:
+        write_datasets(batch.datasets, out / batch.key / batch.label)
+        written[batch.key] = written.get(batch.key, 0) + len(batch.datasets)
+        return True
+
+    outcomes = DaskEngine(client, config)(series, deliver)
+    for o in outcomes:
+        print(f"series {o.key}: {'ok' if o.ok else 'FAILED ' + o.error}; methods "
+              f"{', '.join(o.methods) or '-'}; {written.get(o.key, 0)} objects in {out / o.key}")
+    if not outcomes:
+        print("no series was complete enough to process")
+        return 1
+    return 0 if all(o.ok for o in outcomes) else 1
