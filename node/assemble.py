@@ -42,7 +42,8 @@ from pydicom.dataelem import DataElement, RawDataElement
 from pydicom.multival import MultiValue
 from pydicom.tag import Tag
 
-from node.config import NodeConfig, OffsetRule, Protocol
+from node.companion import CompanionFrame, CompanionSeries, CompanionStore, attach, to_physical
+from node.config import CompanionRule, NodeConfig, OffsetRule, Protocol
 from node.types import AssembledSeries, series_key
 
 __all__ = [
@@ -94,6 +95,7 @@ class Frame:
     pixels: np.ndarray  # (rows, cols) float32
     tiebreak: tuple[int, str, int]  # (InstanceNumber, SOP Instance UID, frame number)
     frame_number: int | None = None  # 1-based for multi-frame instances, None for single
+    header: Dataset | None = None  # multi-frame: the frame's own header (see _frame_header)
 
 
 @dataclass
@@ -109,6 +111,11 @@ class Prepared:
     rows: int
     cols: int
     images_in_acquisition: int | None = None
+    companion: CompanionRule | None = None  # set for an instance of a companion series
+    study_uid: str = ""
+    companion_frames: list[CompanionFrame] = field(default_factory=list)
+    spacing: tuple[float, float] = (1.0, 1.0)
+    companion_units: str = ""
 
 
 # --------------------------------------------------------------------------- header rules
@@ -281,8 +288,10 @@ def _header_only(ds: Dataset) -> Dataset:
     return hdr
 
 
-def _decode_pixels(ds: Dataset) -> np.ndarray:
+def _decode_pixels(ds: Dataset, *, modality: bool = True) -> np.ndarray:
     """Stored pixel values as float32 ``(frames, rows, cols)``, Modality LUT applied.
+
+    With ``modality=False`` the stored values are returned as they are.
 
     Uncompressed little-endian single-sample data is read straight from the Pixel Data bytes
     (one copy); anything else goes through pydicom's ``pixel_array``. Rescale Slope and
@@ -315,6 +324,8 @@ def _decode_pixels(ds: Dataset) -> np.ndarray:
         if arr.ndim == 3 and n_frames == 1:
             raise AssemblyError("PixelData: more than one sample per pixel is not supported")
     out = arr.reshape(n_frames, rows, cols).astype(np.float32)
+    if not modality:
+        return out
     slope = ds.get("RescaleSlope")
     intercept = ds.get("RescaleIntercept")
     if slope is not None and float(slope) != 1.0:
@@ -322,6 +333,41 @@ def _decode_pixels(ds: Dataset) -> np.ndarray:
     if intercept is not None and float(intercept) != 0.0:
         out += np.float32(float(intercept))
     return out
+
+
+_FRAME_KEYWORDS = ("ImagePositionPatient", "ImageOrientationPatient", "PixelSpacing",
+                   "SliceThickness", "SpacingBetweenSlices")
+
+
+def _frame_header(header: Dataset, cands: list[Dataset]) -> Dataset:
+    """A single-frame view of one frame of a multi-frame instance, for the derive builders.
+
+    The instance's top-level elements (shared, not copied) without the functional group
+    sequences and NumberOfFrames, plus the frame's geometry (ImagePositionPatient,
+    ImageOrientationPatient, PixelSpacing, SliceThickness) from its functional groups
+    (PS3.3 C.7.6.16.2: Plane Position, Plane Orientation, Pixel Measures).
+    """
+    drop = {_PER_FRAME, _SHARED, Tag(0x0028, 0x0008)}
+    hdr = Dataset({t: e for t, e in header._dict.items() if t not in drop})
+    if hasattr(header, "file_meta"):
+        hdr.file_meta = header.file_meta
+    for kw in _FRAME_KEYWORDS:
+        value = _find(cands[:-1], keyword=kw)
+        if value is not None:
+            setattr(hdr, kw, value)
+    return hdr
+
+
+def pixel_spacing(ds: Dataset) -> tuple[float, float]:
+    """PixelSpacing (row spacing, column spacing) in mm, from the top level or the shared /
+    first per-frame Pixel Measures (PS3.3 C.7.6.16.2.1); (1, 1) when absent."""
+    value = _find(_candidates(ds, 0 if _PER_FRAME in ds else None), keyword="PixelSpacing")
+    try:
+        if value is not None and len(value) == 2:
+            return float(value[0]), float(value[1])
+    except (TypeError, ValueError):
+        pass
+    return (1.0, 1.0)
 
 
 # --------------------------------------------------------------------------- series state
@@ -355,6 +401,7 @@ class _Series:
     deadline: float = math.inf  # monotonic
     released_hint: bool = False
     held: bool = False
+    study_uid: str = ""
 
     def slice_for(self, position: float) -> _Slice:
         for s in self.slices:
@@ -408,7 +455,11 @@ class Assembler:
         self._cond = threading.Condition()
         self._series: dict[str, _Series] = {}
         self._released: OrderedDict[str, float] = OrderedDict()
-        self._work: queue.Queue[tuple[_Series, float] | None] = queue.Queue()
+        self._work: queue.Queue[tuple[_Series, float, dict[str, CompanionSeries | None]]
+                                | None] = queue.Queue()
+        self._companions = CompanionStore()
+        # released saturation series waiting for companions: key -> (series, released, deadline)
+        self._waiting: dict[str, tuple[_Series, float, float]] = {}
         self._stopping = False
         self._timer: threading.Thread | None = None
         self._worker: threading.Thread | None = None
@@ -455,18 +506,31 @@ class Assembler:
                 return proto
         return None
 
+    def match_companion(self, ds: Dataset) -> tuple[Protocol, CompanionRule] | None:
+        """The first protocol companion rule that fits ``ds`` (tried before the protocols'
+        own match rules, which are usually broader)."""
+        for proto in self.config.protocols:
+            for rule in proto.companions:
+                value = ds.get(rule.match.attribute)
+                if value is not None and rule.match.pattern.search(_as_text(value)):
+                    return proto, rule
+        return None
+
     def prepare(self, ds: Dataset) -> Prepared | None:
         """Match, read the header rules and decode the pixels of one instance (no state).
 
         Returns None when no protocol matches. Safe to call from any thread; the receiver
-        calls it before writing the instance to the spool.
+        calls it before writing the instance to the spool. An instance of a companion series
+        (:mod:`node.companion`) gives a Prepared with ``companion`` set.
 
         Raises
         ------
         AssemblyError
             A header the protocol needs is missing or wrong, or the pixels cannot be decoded.
         """
-        proto = self.match(ds)
+        found = self.match_companion(ds)
+        rule = found[1] if found is not None else None
+        proto = found[0] if found is not None else self.match(ds)
         if proto is None:
             return None
         try:
@@ -481,36 +545,63 @@ class Assembler:
             raise AssemblyError("Rows/Columns: missing or not integers") from None
         if rows < 1 or cols < 1:
             raise AssemblyError(f"Rows/Columns: {rows} x {cols} is empty")
-        pixels = _decode_pixels(ds)
+        physical = rule is not None and rule.kind in ("t1", "b1")
+        pixels = _decode_pixels(ds, modality=not physical)
         multi = _PER_FRAME in ds
         instance_number = int(ds.get("InstanceNumber", 0) or 0)
         frames: list[Frame] = []
+        cframes: list[CompanionFrame] = []
+        units = ""
         orientation: tuple[float, ...] = ()
+        header = _header_only(ds)
         for i in range(pixels.shape[0]):
             fi = i if multi else None
-            offset = read_offset_ppm(ds, proto.offset, frame_index=fi)
             position, orient = slice_geometry(ds, frame_index=fi)
             if orientation and not np.allclose(orient, orientation, atol=_ORIENTATION_TOLERANCE):
                 raise AssemblyError("ImageOrientationPatient: differs between frames")
             orientation = orient
+            if rule is not None:
+                cands = _candidates(ds, fi)
+                ipp = tuple(float(v) for v in _find(cands, keyword="ImagePositionPatient"))
+                if physical:
+                    img, units = to_physical(pixels[i], cands, rule)
+                else:
+                    img = pixels[i]
+                    if multi:
+                        img = self._frame_rescale(img, cands)
+                off = (read_offset_ppm(ds, rule.offset, frame_index=fi)
+                       if rule.offset is not None else math.nan)
+                cframes.append(CompanionFrame(position, ipp, img, off))  # type: ignore[arg-type]
+                continue
+            offset = read_offset_ppm(ds, proto.offset, frame_index=fi)
             img = pixels[i]
+            frame_header = None
             if multi:
                 cands = _candidates(ds, fi)
-                slope, icpt = _find(cands[:-1], "RescaleSlope"), _find(cands[:-1],
-                                                                       "RescaleIntercept")
-                if slope is not None:
-                    img = img * np.float32(float(slope))
-                if icpt is not None:
-                    img = img + np.float32(float(icpt))
+                img = self._frame_rescale(img, cands)
+                frame_header = _frame_header(header, cands)
             frames.append(Frame(offset, position, img, (instance_number, str(sop), i),
-                                frame_number=i + 1 if multi else None))
+                                frame_number=i + 1 if multi else None, header=frame_header))
         iia = ds.get("ImagesInAcquisition")
         try:
             images = int(iia) if iia not in (None, "") else None
         except (TypeError, ValueError):
             images = None
-        return Prepared(series_key(str(study), str(series)), proto, str(sop), _header_only(ds),
-                        frames, orientation, rows, cols, images)
+        return Prepared(series_key(str(study), str(series)), proto, str(sop), header,
+                        frames, orientation, rows, cols, images, companion=rule,
+                        study_uid=str(study), companion_frames=cframes,
+                        spacing=pixel_spacing(ds) if rule is not None else (1.0, 1.0),
+                        companion_units=units)
+
+    @staticmethod
+    def _frame_rescale(img: np.ndarray, cands: list[Dataset]) -> np.ndarray:
+        """Per-frame Rescale Slope/Intercept (Pixel Value Transformation, PS3.3 C.7.6.16.2.9)."""
+        slope, icpt = _find(cands[:-1], "RescaleSlope"), _find(cands[:-1], "RescaleIntercept")
+        if slope is not None:
+            img = img * np.float32(float(slope))
+        if icpt is not None:
+            img = img + np.float32(float(icpt))
+        return img
 
     def place(self, prep: Prepared) -> Placed:
         """Put a prepared instance's frames into its series (the only stateful step).
@@ -524,6 +615,8 @@ class Assembler:
             The instance does not fit its series (matrix size or orientation differs);
             nothing is changed.
         """
+        if prep.companion is not None:
+            return self._place_companion(prep)
         now_wall, now = time.time(), time.monotonic()
         with self._cond:
             s = self._series.get(prep.key)
@@ -537,7 +630,8 @@ class Assembler:
                 per_slice = (proto.expected_offsets or len(proto.offset.values_ppm)
                              or (expected if expected and expected <= 256 else 64))
                 s = _Series(prep.key, proto, prep.rows, prep.cols, prep.orientation, expected,
-                            capacity=max(per_slice, 1), first_at=now_wall)
+                            capacity=max(per_slice, 1), first_at=now_wall,
+                            study_uid=prep.study_uid)
                 self._series[prep.key] = s
                 log.info("series %s: new, protocol %s, expecting %s frames", prep.key,
                          proto.name, expected if expected is not None else "an unknown count of")
@@ -562,7 +656,7 @@ class Assembler:
                 sl.stack[sl.count] = fr.pixels
                 sl.offsets.append(fr.offset_ppm)
                 sl.ties.append(fr.tiebreak)
-                sl.headers.append(prep.header)
+                sl.headers.append(fr.header if fr.header is not None else prep.header)
                 s.n_frames += 1
             s.last_at = now_wall
             if s.held:
@@ -574,6 +668,26 @@ class Assembler:
                 self._on_deadline_locked(s)
             elif new_series:
                 self._cond.notify_all()
+        return Placed.ADDED
+
+    def _place_companion(self, prep: Prepared) -> Placed:
+        """Keep the frames of a companion instance; wake any saturation series waiting."""
+        rule = prep.companion
+        assert rule is not None
+        cs = CompanionSeries(prep.key, prep.study_uid, prep.protocol.name, rule, prep.rows,
+                             prep.cols, prep.orientation, prep.spacing,
+                             expected=prep.images_in_acquisition,
+                             unit_detail=prep.companion_units)
+        with self._cond:
+            try:
+                added = self._companions.add(cs, prep.sop_instance_uid, prep.companion_frames,
+                                             time.monotonic())
+            except ValueError as exc:
+                raise AssemblyError(str(exc)) from None
+            if not added:
+                log.info("companion series %s: duplicate instance ignored", prep.key)
+                return Placed.DUPLICATE
+            self._cond.notify_all()
         return Placed.ADDED
 
     def add(self, ds: Dataset) -> Placed:
@@ -612,11 +726,13 @@ class Assembler:
             for s in list(self._series.values()):
                 if not s.held:
                     s.deadline = -math.inf
+            for key, (s, at, _) in list(self._waiting.items()):
+                self._waiting[key] = (s, at, -math.inf)
             self._cond.notify_all()
         if wait:
             deadline = None if timeout is None else time.monotonic() + timeout
             with self._cond:
-                while any(not s.held for s in self._series.values()):
+                while self._waiting or any(not s.held for s in self._series.values()):
                     left = None if deadline is None else deadline - time.monotonic()
                     if left is not None and left <= 0:
                         raise TimeoutError("flush: series still open")
@@ -634,8 +750,54 @@ class Assembler:
         self._released[s.key] = now_wall
         while len(self._released) > 10000:
             self._released.popitem(last=False)
-        self._work.put((s, now_wall))
+        if s.protocol.companions:
+            wait = max(rule.timeout_s for rule in s.protocol.companions)
+            self._waiting[s.key] = (s, now_wall, time.monotonic() + wait)
+            self._check_waiting_locked()
+        else:
+            self._work.put((s, now_wall, {}))
         self._cond.notify_all()
+
+    def _companions_for(self, s: _Series, now: float
+                        ) -> tuple[dict[str, CompanionSeries | None], float | None]:
+        """The ready companion of each kind (None when absent), and when to look again.
+
+        The second value is None when every kind is ready, else the soonest time (monotonic)
+        a kind's state may change on its own (a companion turning ready by quiet time, or the
+        kind's timeout).
+        """
+        out: dict[str, CompanionSeries | None] = {}
+        again: list[float] = []
+        released = self._released.get(s.key, time.time())
+        waited = time.time() - released
+        for rule in s.protocol.companions:
+            comp = self._companions.find(s.study_uid, s.protocol.name, rule.kind)
+            if comp is not None and comp.ready(now, self.config.release_grace_s):
+                out[rule.kind] = comp.snapshot()
+                continue
+            out[rule.kind] = None
+            if waited < rule.timeout_s:
+                again.append(now + rule.timeout_s - waited)
+                if comp is not None:
+                    again.append(comp.ready_at(self.config.release_grace_s))
+        return out, (min(again) if again else None)
+
+    def _check_waiting_locked(self) -> float | None:
+        """Hand on the waiting series whose companions are all ready or timed out; returns the
+        soonest time (monotonic) another check is due, None when nothing waits."""
+        now = time.monotonic()
+        due: list[float] = []
+        for key, (s, at, deadline) in list(self._waiting.items()):
+            found, again = self._companions_for(s, now)
+            if again is None or deadline <= now:
+                del self._waiting[key]
+                have = sorted(k for k, v in found.items() if v is not None)
+                log.info("series %s: companions %s", key, ", ".join(have) or "none")
+                self._work.put((s, at, found))
+                self._cond.notify_all()
+            else:
+                due.append(min(again, deadline))
+        return min(due) if due else None
 
     def _timer_loop(self) -> None:
         with self._cond:
@@ -645,6 +807,10 @@ class Assembler:
                 for s in due:
                     self._on_deadline_locked(s)
                 pending = [s.deadline for s in self._series.values() if not s.held]
+                if self._waiting:
+                    nxt = self._check_waiting_locked()
+                    if nxt is not None:
+                        pending.append(max(nxt, time.monotonic() + 0.01))
                 wait = (min(pending) - time.monotonic()) if pending else None
                 if wait is None or wait > 0:
                     self._cond.wait(wait)
@@ -669,9 +835,13 @@ class Assembler:
             try:
                 if item is None:
                     return
-                s, released_at = item
+                s, released_at, found = item
                 try:
                     result = _finish(s, released_at)
+                    if s.protocol.companions:
+                        attach(result, s.protocol, found)
+                        for note in result.companion_notes:
+                            log.warning("series %s: %s", s.key, note)
                 except Exception:
                     log.exception("series %s: assembly failed", s.key)
                     continue
@@ -747,7 +917,8 @@ def _assess(s: _Series) -> tuple[bool, str, bool]:
     needed: list[str] = []
     for rank, i in enumerate(order):
         offs = np.asarray(s.slices[i].offsets)
-        if not (np.abs(offs) >= proto.m0_threshold_ppm).any():
+        if (proto.companion("m0") is None
+                and not (np.abs(offs) >= proto.m0_threshold_ppm).any()):
             needed.append(f"slice {rank} has no M0 (|offset| >= {proto.m0_threshold_ppm:g} ppm)")
         for req in proto.required_offsets_ppm:
             if not (np.abs(offs - req) <= proto.required_tolerance_ppm).any():
