@@ -337,6 +337,10 @@ class NodeConfig:
         Size limits: an instance beyond them, or one that would take its series beyond
         ``max_frames_per_series`` frames, gets 0xA700. They bound the memory of one series
         (see the README).
+    send_retry_for_s, send_backoff_s, send_backoff_max_s
+        An object a destination did not acknowledge is retried (:mod:`node.outbox`) with
+        exponential back-off from ``send_backoff_s`` up to ``send_backoff_max_s`` (with
+        jitter), for ``send_retry_for_s`` seconds; then it is marked failed and reported.
     tls
         TLS certificates and policy (:class:`~node.tls.TlsSettings`), None without TLS.
     metrics
@@ -361,6 +365,9 @@ class NodeConfig:
     max_rows: int = 1024
     max_cols: int = 1024
     max_frames_per_series: int = 4096
+    send_retry_for_s: float = 86400.0
+    send_backoff_s: float = 5.0
+    send_backoff_max_s: float = 600.0
     tls: TlsSettings | None = None
     metrics: MetricsSettings = field(default_factory=lambda: MetricsSettings())
 
@@ -457,7 +464,13 @@ def parse_config(
     _only(node, {"ae_title", "host", "port", "allowed_calling_aets", "spool_dir", "log_dir",
                  "fsync", "idle_timeout_s", "release_grace_s", "max_pdu",
                  "allowed_peer_addresses", "max_associations", "min_free_mb", "max_rows",
-                 "max_cols", "max_frames_per_series"}, "node")
+                 "max_cols", "max_frames_per_series", "send_retry_for_s", "send_backoff_s",
+                 "send_backoff_max_s"}, "node")
+    backoff = _number(node.get("send_backoff_s", 5.0), "node.send_backoff_s", gt=0)
+    backoff_max = _number(node.get("send_backoff_max_s", 600.0), "node.send_backoff_max_s", gt=0)
+    if backoff_max < backoff:
+        raise ConfigError(f"node.send_backoff_max_s: must be >= send_backoff_s ({backoff:g}), "
+                          f"got {backoff_max:g}")
     peers = _array(node.get("allowed_peer_addresses", []), "node.allowed_peer_addresses")
     tls = _tls(data["tls"], "tls", base) if "tls" in data else None
     dests_raw = _array(data.get("destinations", []), "destinations")
@@ -494,6 +507,10 @@ def parse_config(
         max_cols=_int(node.get("max_cols", 1024), "node.max_cols", ge=1),
         max_frames_per_series=_int(node.get("max_frames_per_series", 4096),
                                    "node.max_frames_per_series", ge=1),
+        send_retry_for_s=_number(node.get("send_retry_for_s", 86400.0), "node.send_retry_for_s",
+                                 ge=0),
+        send_backoff_s=backoff,
+        send_backoff_max_s=backoff_max,
         tls=tls,
         metrics=_metrics(data.get("metrics", {}), "metrics"),
     )

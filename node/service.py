@@ -1,9 +1,11 @@
-"""The running node: receive -> assemble -> schedule -> quant -> derive -> send, timed.
+"""The running node: receive -> assemble -> schedule -> quant -> derive -> outbox -> send, timed.
 
 :class:`Processor` turns one :class:`~node.types.AssembledSeries` into derived objects and
-hands each batch to a ``deliver`` callable (the sender in ``serve``, a folder writer in
-``process``). :class:`Node` wires a :class:`~node.receive.Receiver` to a processor and a
-:class:`~node.send.Sender`, and writes one latency record per series.
+hands each batch to a ``deliver`` callable (the outbox and sender in ``serve``, a folder
+writer in ``process``). :class:`Node` wires a :class:`~node.receive.Receiver` to a processor,
+the :class:`~node.outbox.Outbox` and a :class:`~node.send.Sender`, records each series' state
+in the spool's index, resumes after a crash (:mod:`node.recovery`), and writes one latency
+record per pass.
 """
 
 from __future__ import annotations
@@ -13,6 +15,7 @@ import queue
 import threading
 import time
 from collections.abc import Callable, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -21,11 +24,16 @@ import numpy as np
 from pydicom import Dataset
 
 from node import pipeline
+from node.calibrate import CalibrationReport, calibrate_for, learn_from_record
 from node.config import NodeConfig, Protocol
 from node.derive import BUILDERS, DerivedRequest
+from node.metrics import metrics_for
+from node.outbox import Outbox, OutboxWorker, RetryPolicy
 from node.receive import Receiver
+from node.recovery import Recovery
 from node.schedule import CostModel, plan_methods
-from node.send import Sender, SendSettings
+from node.send import Sender, SendReport, SendSettings
+from node.spool import Spool
 from node.timing import LatencyLog, SeriesClock
 from node.types import AssembledSeries, OutputBatch, uid_from
 from quant.registry import METHODS
@@ -52,6 +60,10 @@ class SeriesOutcome:
     error: str = ""
     record: dict[str, Any] = field(default_factory=dict)
     maps: dict[str, np.ndarray] = field(default_factory=dict)
+    failed: bool = False
+    """Processing raised (the series is marked failed); a send still retrying is not this."""
+    abandoned: bool = False
+    """The deferred pass stopped on shutdown (it runs again at the next start)."""
 
 
 def output_series_uid(source_series_uid: str, method: str, kind: str) -> str:
@@ -122,12 +134,14 @@ class Processor:
             job = self._process(series, protocol, clock, outcome)
         except Exception as exc:  # a failure of one series never stops the node
             outcome.ok = False
+            outcome.failed = True
             outcome.error = f"{type(exc).__name__}: {exc}"
             log.exception("series %s: processing failed", series.key)
         outcome.record = clock.record(
             budget_s=protocol.budget_s,
             protocol=protocol.name,
             instances=series.instance_count,
+            slices=int(series.signal.shape[0]),
             complete=series.complete,
             missing=series.missing,
             methods=outcome.methods,
@@ -166,6 +180,7 @@ class Processor:
                 log.info("series %s: deferred %s done in %.1f s", series.key, name, res.seconds)
             except pipeline.Abandoned as exc:
                 outcome.ok = False
+                outcome.abandoned = True
                 outcome.error = str(exc)
                 log.warning("series %s: %s", series.key, exc)
                 break
@@ -184,15 +199,23 @@ class Processor:
         outcome.record["deferred_ms"] = round(clock.since("deferred_start") * 1000.0, 1)
         return outcome
 
+    def deferred_job(self, series: AssembledSeries, methods: list[str]) -> DeferredJob:
+        """The deferred job of a series whose budget-bound pass is already done (recovery)."""
+        protocol = self.config.protocol(series.protocol)
+        return DeferredJob(series, protocol, self._prepare(series, protocol), list(methods))
+
+    def _prepare(self, series: AssembledSeries, protocol: Protocol) -> pipeline.Prepared:
+        return pipeline.prepare(
+            series.signal, series.offsets_ppm, m0_threshold_ppm=protocol.m0_threshold_ppm,
+            saturation={"b1_ut": protocol.b1_ut, "tsat_s": protocol.tsat_s,
+                        "field_t": protocol.field_t},
+        )
+
     # ------------------------------------------------------------------------------------
     def _process(self, series: AssembledSeries, protocol: Protocol, clock: SeriesClock,
                  outcome: SeriesOutcome) -> DeferredJob | None:
         with clock.stage("prepare"):
-            prep = pipeline.prepare(
-                series.signal, series.offsets_ppm, m0_threshold_ppm=protocol.m0_threshold_ppm,
-                saturation={"b1_ut": protocol.b1_ut, "tsat_s": protocol.tsat_s,
-                            "field_t": protocol.field_t},
-            )
+            prep = self._prepare(series, protocol)
         for name, sec in prep.seconds.items():
             clock.add(name, sec * 1000.0)
         slices = series.signal.shape[0]
@@ -201,11 +224,12 @@ class Processor:
             protocol.methods, registry=METHODS, cost=self.cost, n_voxels=n_voxels,
             n_slices=slices, n_outputs=len(protocol.outputs), budget_s=protocol.budget_s,
             elapsed_s=clock.since("last_instance") if "last_instance" in clock.marks else 0.0,
-            have_t1=False, deferred_enabled=protocol.model_based,
+            have_t1=False, deferred_enabled=protocol.model_based, outputs=protocol.outputs,
         )
         outcome.skipped = dict(plan.skipped)
         outcome.deferred = list(plan.deferred)
         clock.info["predicted_s"] = plan.predicted_s
+        clock.info["predicted_parts_s"] = plan.predicted_parts_s
         for name, why in plan.skipped.items():
             log.info("series %s: method %s skipped: %s", series.key, name, why)
         measured: dict[str, float] = {}
@@ -259,7 +283,7 @@ class Processor:
 
 
 class Node:
-    """The long-running service: a receiver in front of a processor and a sender.
+    """The long-running service: a receiver in front of a processor, an outbox and a sender.
 
     Parameters
     ----------
@@ -269,30 +293,57 @@ class Node:
         Optional callback with every :class:`SeriesOutcome` (after its latency record is
         written): the budget-bound pass and, later, the deferred pass of each series
         (``outcome.record["pass"] == "deferred"``).
+    keep_maps
+        Keep the computed maps in the outcomes (tests, the demo).
+    send_settings
+        The sender's settings (default: the config's AE title and TLS, one quick retry per
+        send; the outbox retries after that).
+    durable
+        True (the default): every output goes through the :class:`~node.outbox.Outbox`
+        (file and index row before the send, retried with back-off, resumed after a crash).
+        False sends straight from memory (only to measure what the outbox costs).
 
     Notes
     -----
+    State lives in the spool's index (:mod:`node.spool`, :mod:`node.outbox`): on
+    :meth:`start` the node resumes what a crash interrupted (:mod:`node.recovery`): open
+    series are reloaded into the assembler (their idle clock restarts), released but
+    unprocessed series are reassembled from the spool and processed, series whose deferred
+    pass had not finished run it, and unsent outputs are sent.
+
     Model-based methods run on a deferred thread, one series at a time, in chunks of voxels;
     before each chunk the deferred pass waits while any budget-bound pass is running, so it
     never delays the next series' primary outputs by more than one chunk.
     """
 
     def __init__(self, config: NodeConfig, *, on_outcome: Callable[[SeriesOutcome], None] | None = None,
-                 keep_maps: bool = False, send_settings: SendSettings | None = None):
+                 keep_maps: bool = False, send_settings: SendSettings | None = None,
+                 durable: bool = True):
         self.config = config
+        self.durable = durable
         self.latency = LatencyLog(config.log_dir)
         self._stop = threading.Event()
-        self.sender = Sender(send_settings or SendSettings(calling_ae=config.ae_title,
-                                                           tls=config.tls),
-                             stop=self._stop)
+        self.sender = Sender(send_settings or SendSettings(
+            calling_ae=config.ae_title, tls=config.tls, retries=1, backoff_s=0.2),
+            stop=self._stop)
         self.processor = Processor(config, self._deliver, keep_maps=keep_maps)
-        self.receiver = Receiver(config, self._on_series)
+        self.spool = Spool(config.spool_dir, fsync=config.fsync)
+        self.receiver = Receiver(config, self._on_series, spool=self.spool)
+        self.outbox = Outbox(config.spool_dir, policy=RetryPolicy(
+            retry_for_s=config.send_retry_for_s, backoff_s=config.send_backoff_s,
+            backoff_max_s=config.send_backoff_max_s))
+        self.worker = OutboxWorker(self.outbox, self.sender, config.destinations, self._stop,
+                                   on_missing=self._rebuild)
+        self.metrics = metrics_for(config.metrics)
+        self.receiver.on_status = self.metrics.refusal
+        self.calibration: CalibrationReport | None = None
         self.on_outcome = on_outcome
         self._unsent_dir = Path(config.spool_dir) / "unsent"
         self._deferred: queue.Queue[DeferredJob | None] = queue.Queue()
-        self._primary_idle = threading.Event()
-        self._primary_idle.set()
+        self._busy = 0  # budget-bound passes running
+        self._busy_cond = threading.Condition()
         self._deferred_thread: threading.Thread | None = None
+        self._recovery: Recovery | None = None
 
     @property
     def port(self) -> int | None:
@@ -303,17 +354,35 @@ class Node:
         self._deferred_thread = threading.Thread(target=self._deferred_loop,
                                                  name="cest-deferred", daemon=True)
         self._deferred_thread.start()
+        if self.durable:
+            self.outbox.resume()
+            self.worker.start()
+        if self.config.metrics.calibrate:
+            self.calibration = calibrate_for(self.processor.cost, self.config.protocols)
+        if self.config.metrics.enabled:
+            self.metrics.serve(self.config.metrics.host, self.config.metrics.port)
+        # the plan is read before the receiver listens: a new series is never taken for an
+        # interrupted one
+        self._recovery = Recovery(self.config, self.spool, self.receiver.assembler,
+                                  process=self._on_series, defer=self._defer_recovered)
         self.receiver.start()
+        self._recovery.start()
         return self
 
     def stop(self) -> None:
         self._stop.set()
-        self._primary_idle.set()
-        self.receiver.stop()
+        with self._busy_cond:
+            self._busy_cond.notify_all()
+        if self._recovery is not None:
+            self._recovery.join()
+        self.receiver.stop()  # closes the spool too
+        self.metrics.stop()
         self._deferred.put(None)
         if self._deferred_thread is not None:
             self._deferred_thread.join(timeout=30)
             self._deferred_thread = None
+        self.worker.join()
+        self.outbox.close()
 
     def __enter__(self) -> Node:
         return self.start()
@@ -321,18 +390,49 @@ class Node:
     def __exit__(self, *exc: object) -> None:
         self.stop()
 
+    def wait_recovered(self, timeout: float | None = None) -> bool:
+        """Wait until what :meth:`start` found to resume has been reloaded or processed."""
+        return self._recovery is None or self._recovery.wait(timeout)
+
     # ------------------------------------------------------------------------------------
     def _on_series(self, series: AssembledSeries) -> None:
-        self._primary_idle.clear()
+        with self._busy_cond:
+            self._busy += 1
         try:
             outcome, job = self.processor.process(series)
         finally:
-            self._primary_idle.set()
+            with self._busy_cond:
+                self._busy -= 1
+                self._busy_cond.notify_all()
+        self._mark(outcome, job)
         self._finish(outcome)
         if job is not None:
             self._deferred.put(job)
 
+    def _defer_recovered(self, series: AssembledSeries, methods: tuple[str, ...]) -> None:
+        """A series whose deferred pass a crash interrupted: run that pass again."""
+        self._deferred.put(self.processor.deferred_job(series, list(methods)))
+
+    def _mark(self, outcome: SeriesOutcome, job: DeferredJob | None) -> None:
+        """Record the end of a pass in the spool's index (atomic, one row)."""
+        try:
+            if outcome.failed:
+                self.spool.mark_processed(outcome.key, "failed", error=outcome.error)
+            elif job is not None:
+                self.spool.mark_processed(outcome.key, "deferring", deferred=tuple(job.methods))
+            else:
+                self.spool.mark_processed(outcome.key, "processed")
+        except Exception:  # the spool is closed on shutdown; the state stays as it was
+            log.exception("series %s: could not record the end of processing", outcome.key)
+
+    def _rebuild(self, key: str) -> None:
+        """An output's file is lost (e.g. a power cut before it reached the disk)."""
+        if self._recovery is not None:
+            self._recovery.rebuild(key)
+
     def _finish(self, outcome: SeriesOutcome) -> None:
+        learn_from_record(self.processor.cost, outcome.record)  # measured_parts_s, costs
+        self.metrics.observe(outcome.record)
         self.latency.write(outcome.record)
         rec = outcome.record
         if rec.get("pass") == "deferred":
@@ -349,7 +449,8 @@ class Node:
 
     def _give_way(self, done: int, total: int) -> bool:
         """Between chunks of a fit: wait while a budget-bound pass runs; False on shutdown."""
-        self._primary_idle.wait()  # stop() sets it too, so a shutdown never waits here
+        with self._busy_cond:
+            self._busy_cond.wait_for(lambda: self._busy == 0 or self._stop.is_set())
         return not self._stop.is_set()
 
     def _deferred_loop(self) -> None:
@@ -362,6 +463,8 @@ class Node:
             except Exception:  # never let one series end the deferred thread
                 log.exception("series %s: deferred pass failed", job.series.key)
                 continue
+            if not outcome.abandoned:  # abandoned on shutdown: resumed at the next start
+                self._mark(outcome, None)
             self._finish(outcome)
 
     def _deliver(self, batch: OutputBatch, clock: SeriesClock) -> bool:
@@ -370,9 +473,41 @@ class Node:
                         batch.key, len(batch.datasets), self._unsent_dir)
             write_datasets(batch.datasets, self._unsent_dir / batch.key)
             return True
+        if not self.durable:
+            return self._send_from_memory(batch, clock)
+        with clock.stage(f"outbox:{batch.label}"):
+            claim = self.outbox.put(batch, [str(d) for d in self.config.destinations])
+        dests = [d for d in self.config.destinations if claim.get(str(d))]
+
+        reports: list[SendReport] = []
+
+        def one(dest: Any) -> int:
+            idx = claim[str(dest)]
+            report = self.sender.send([batch.datasets[i] for i in idx], dest, key=batch.key)
+            reports.append(report)
+            return self.outbox.record(report, [str(batch.datasets[i].SOPInstanceUID)
+                                               for i in idx], series_key=batch.key)
+
+        with clock.stage(f"send:{batch.label}"):
+            if len(dests) == 1:
+                unsent = [one(dests[0])]
+            else:
+                with ThreadPoolExecutor(max_workers=max(len(dests), 1),
+                                        thread_name_prefix="send") as pool:
+                    unsent = list(pool.map(one, dests))
+        self.metrics.observe_send(batch.label, reports)
+        if sum(unsent):
+            clock.info["unsent"] = clock.info.get("unsent", 0) + sum(unsent)
+            log.warning("series %s: %d objects of %s wait in the outbox for a retry", batch.key,
+                        sum(unsent), batch.label)
+            return False
+        return True
+
+    def _send_from_memory(self, batch: OutputBatch, clock: SeriesClock) -> bool:
         ok = True
         with clock.stage(f"send:{batch.label}"):
             reports = self.sender.send_batch(batch, self.config.destinations)
+        self.metrics.observe_send(batch.label, reports)
         for rep in reports:
             if not rep.ok:
                 ok = False
