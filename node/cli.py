@@ -191,6 +191,20 @@ def cmd_echo(args: argparse.Namespace) -> int:
     return 0 if res.ok else 1
 
 
+# ------------------------------------------------------------------------------ status
+def cmd_status(args: argparse.Namespace) -> int:
+    from node.config import ConfigError
+    from node.status import format_status, read_status
+
+    try:
+        report = read_status(_load(args.config), recent=args.recent)
+    except (ConfigError, ValueError) as exc:
+        print(f"cest-node status: {exc}", file=sys.stderr)
+        return 1
+    print(report.to_json() if args.json else format_status(report))
+    return 0
+
+
 # ------------------------------------------------------------------------------ check-config
 def cmd_check_config(args: argparse.Namespace) -> int:
     from node.config import ConfigError
@@ -302,6 +316,12 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--calling-ae", default="CESTNODE")
     s.set_defaults(func=cmd_echo)
 
+    s = sub.add_parser("status", help="series in flight, recent series, the outbox")
+    s.add_argument("--config", help="TOML config (default: the embedded default)")
+    s.add_argument("--recent", type=int, default=10, help="recent series to list")
+    s.add_argument("--json", action="store_true", help="print JSON instead of text")
+    s.set_defaults(func=cmd_status)
+
     s = sub.add_parser("check-config", help="validate a config file")
     s.add_argument("file")
     s.set_defaults(func=cmd_check_config)
@@ -321,7 +341,8 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: Sequence[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     _setup_logging(args.verbose, quiet=args.command in ("demo", "process", "phantom", "echo",
-                                                        "check-config", "conformance", "health")
+                                                        "check-config", "conformance", "health",
+                                                        "status")
                    and args.verbose == 0)
     try:
         return int(args.func(args))
