@@ -14,6 +14,17 @@ source images. SOP Instance UIDs are derived from the output series UID and the 
     :func:`node.derive.mr.build`, one int16 derived MR Image (PS3.3 A.4) per slice.
 ``secondary_capture``
     :func:`node.derive.sc.build`, one RGB Secondary Capture (PS3.3 A.8.1) per slice.
+
+``REPORT_BUILDERS`` holds the per-series builders, which take a :class:`ReportRequest`
+(every method's map of one source series, the brain mask, QC figures and reasons):
+
+``structured_report``
+    :func:`node.derive.sr.build`, one Comprehensive 3D SR (TID 1500) of hemisphere
+    statistics and quality figures.
+``segmentation``
+    :func:`node.derive.seg.build`, one binary Segmentation of the research candidate region.
+``summary``
+    :func:`node.derive.summary.build`, one RGB Secondary Capture with every map side by side.
 """
 
 from __future__ import annotations
@@ -22,7 +33,8 @@ from collections.abc import Callable
 
 from pydicom import Dataset
 
-from node.derive import mr, pm, sc
+from node.derive import mr, pm, sc, seg, sr, summary
+from node.derive.report import ReportRequest, qc_note
 from node.derive.request import RESEARCH_MARKER, DerivedRequest, output_uid
 
 Builder = Callable[[DerivedRequest], list[Dataset]]
@@ -33,4 +45,13 @@ BUILDERS: dict[str, Builder] = {
     "secondary_capture": sc.build,
 }
 
-__all__ = ["BUILDERS", "RESEARCH_MARKER", "Builder", "DerivedRequest", "output_uid"]
+ReportBuilder = Callable[[ReportRequest], list[Dataset]]
+
+REPORT_BUILDERS: dict[str, ReportBuilder] = {
+    "structured_report": sr.build,
+    "segmentation": seg.build,
+    "summary": summary.build,
+}
+
+__all__ = ["BUILDERS", "REPORT_BUILDERS", "RESEARCH_MARKER", "Builder", "DerivedRequest",
+           "ReportBuilder", "ReportRequest", "output_uid", "qc_note"]
