@@ -18,6 +18,7 @@ from __future__ import annotations
 import datetime as _dt
 from collections.abc import Sequence
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from pydicom import Dataset
@@ -219,10 +220,10 @@ def write_series(datasets: Sequence[Dataset], out_dir: str | Path) -> list[Path]
 
 
 # --------------------------------------------------------------------------- companions
-def _same_study(seed: str) -> dict[str, str]:
+def _same_study(seed: str, kwargs: dict[str, object]) -> dict[str, Any]:
     """UIDs that tie a companion series to the saturation series written with ``seed``."""
     return {"study_uid": uid_from(seed, "study"),
-            "frame_of_reference_uid": uid_from(seed, "frame-of-reference")}
+            "frame_of_reference_uid": uid_from(seed, "frame-of-reference"), **kwargs}
 
 
 def _as_map(datasets: list[Dataset], comment: str, image_type: str) -> list[Dataset]:
@@ -261,7 +262,7 @@ def m0_series(m0: np.ndarray, *, seed: str, scale: float, **kwargs: object) -> l
     kwargs.setdefault("series_description", "CEST M0 phantom")
     kwargs.setdefault("series_number", 902)
     return series_from_arrays(np.asarray(m0)[..., None], [M0_OFFSET_PPM], seed=f"{seed}-m0",
-                              scale=scale, **_same_study(seed), **kwargs)  # type: ignore[arg-type]
+                              scale=scale, **_same_study(seed, kwargs))
 
 
 def wassr_series(signal: np.ndarray, offsets_ppm: Sequence[float] | np.ndarray, *, seed: str,
@@ -271,8 +272,8 @@ def wassr_series(signal: np.ndarray, offsets_ppm: Sequence[float] | np.ndarray, 
     :func:`quant.phantom.make_phantom` at low saturation power."""
     kwargs.setdefault("series_description", "WASSR phantom")
     kwargs.setdefault("series_number", 903)
-    return series_from_arrays(signal, offsets_ppm, seed=f"{seed}-wassr", **_same_study(seed),
-                              **kwargs)  # type: ignore[arg-type]
+    return series_from_arrays(signal, offsets_ppm, seed=f"{seed}-wassr",
+                              **_same_study(seed, kwargs))
 
 
 def t1_map_series(t1_s: np.ndarray, *, seed: str, unit: str = "ms", rwvm: bool = True,
@@ -290,7 +291,7 @@ def t1_map_series(t1_s: np.ndarray, *, seed: str, unit: str = "ms", rwvm: bool =
     kwargs.setdefault("series_description", "T1 map phantom")
     kwargs.setdefault("series_number", 904)
     out = series_from_arrays(values[..., None], [0.0], seed=f"{seed}-t1", scale=1.0,
-                             **_same_study(seed), **kwargs)  # type: ignore[arg-type]
+                             **_same_study(seed, kwargs))
     _as_map(out, f"T1 map, stored in ms{'' if rwvm else ' (no mapping)'}", "T1 MAP")
     if rwvm:
         item = (_rwvm("ms", "millisecond", 1.0, 65535) if unit == "ms"
@@ -309,7 +310,7 @@ def b1_map_series(b1_rel: np.ndarray, *, seed: str, rwvm: bool = True,
     kwargs.setdefault("series_description", "B1 map phantom")
     kwargs.setdefault("series_number", 905)
     out = series_from_arrays(values[..., None], [0.0], seed=f"{seed}-b1", scale=1.0,
-                             **_same_study(seed), **kwargs)  # type: ignore[arg-type]
+                             **_same_study(seed, kwargs))
     _as_map(out, "relative B1 map, tenths of a percent of nominal", "B1 MAP")
     if rwvm:
         item = _rwvm("%", "percent", 0.1, 65535)
