@@ -9,11 +9,31 @@ from __future__ import annotations
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 import quant
+from quant.motion import register_frames
 from quant.registry import METHODS
+from quant.wassr import wassr_shift
+
+if TYPE_CHECKING:
+    from node.config import Protocol
+    from node.types import AssembledSeries
+
+
+@dataclass
+class FrameMotion:
+    """The in-plane motion of every frame (``(slices, n_offsets)`` arrays, columns of the
+    assembled signal, :class:`quant.motion.MotionResult` sign convention), for QC."""
+
+    dy_mm: np.ndarray
+    dx_mm: np.ndarray
+    angle_deg: np.ndarray | None
+    measured: np.ndarray
+    offsets_ppm: np.ndarray
+    max_displacement_mm: float
 
 
 @dataclass
@@ -33,6 +53,18 @@ class Prepared:
     seconds: dict[str, float]
     z_uncorrected: np.ndarray | None = None
     saturation: dict[str, float] = field(default_factory=dict)
+    t1_s: np.ndarray | None = None
+    """T1 (s) per voxel from a T1 companion, NaN where unknown; None without one."""
+    b1_rel: np.ndarray | None = None
+    """Relative B1 (1 = nominal) from a B1 companion; None without one."""
+    b1_outside: np.ndarray | None = None
+    """Brain voxels whose relative B1 is unknown or off nominal by more than the tolerance."""
+    motion: FrameMotion | None = None
+    """Motion of every frame when motion correction ran."""
+    b0_source: str = "internal"
+    """``"internal"`` (estimated from the Z-spectra) or ``"wassr"``."""
+    m0_source: str = "series"
+    """``"series"`` (the series' own M0 frames) or ``"companion"``."""
 
 
 @dataclass
@@ -51,27 +83,140 @@ def prepare(
     *,
     m0_threshold_ppm: float = 20.0,
     saturation: dict[str, float] | None = None,
+    m0: np.ndarray | None = None,
+    b0_shift_ppm: np.ndarray | None = None,
+    t1_s: np.ndarray | None = None,
+    b1_rel: np.ndarray | None = None,
+    b1_tolerance: float = 0.2,
+    motion_correction: bool = False,
+    motion_rotation: bool = False,
+    spacing_mm: tuple[float, float] = (1.0, 1.0),
+    frame_times: np.ndarray | None = None,
 ) -> Prepared:
-    """Normalise by M0, mask the brain, estimate and correct the B0 shift.
+    """Optionally register the frames, normalise by M0, mask the brain, correct the B0 shift.
 
     ``saturation`` (``b1_ut``, ``tsat_s``, ``field_t``) is kept for the methods that model
-    the saturation (Bloch-McConnell fits).
+    the saturation (Bloch-McConnell fits). The companions (``m0``, ``b0_shift_ppm`` from a
+    WASSR series, ``t1_s``, ``b1_rel``, all ``(slices, rows, cols)``) replace or add to what
+    the series gives:
+
+    * ``m0``: the reference for ``Z = S / M0`` (the series' own M0 frames are then dropped).
+    * ``b0_shift_ppm``: used as the B0 shift instead of the internal estimate; voxels where it
+      is NaN are invalid (NaN in ``z``).
+    * ``t1_s`` and ``b1_rel`` are kept in the result; ``b1_outside`` marks brain voxels with
+      ``|b1_rel - 1| > b1_tolerance`` or unknown B1.
+    * ``motion_correction``: every frame is registered to the M0 (``m0``, or the mean of the
+      series' M0 frames) by :func:`quant.motion.register_frames` (translation, plus rotation
+      with ``motion_rotation``; one motion per frame shared by all slices, since a rigid head
+      moves every slice together), in ``spacing_mm`` (PixelSpacing order); ``frame_times``
+      (acquisition order of each column) guides the interpolation of low-signal frames.
     """
     seconds: dict[str, float] = {}
+    motion: FrameMotion | None = None
+    offsets_ppm = np.asarray(offsets_ppm, dtype=np.float64)
+    if motion_correction:
+        t0 = time.perf_counter()
+        if m0 is not None:
+            ref = np.asarray(m0, dtype=signal.dtype)
+        else:
+            is_m0 = np.abs(offsets_ppm) >= m0_threshold_ppm
+            if not is_m0.any():
+                raise ValueError("motion correction needs an M0: the series has no frame at "
+                                 f"|offset| >= {m0_threshold_ppm:g} ppm and no M0 companion")
+            ref = np.nanmean(signal[..., is_m0], axis=-1)
+        res = register_frames(np.nan_to_num(signal), np.nan_to_num(ref), spacing_mm=spacing_mm,
+                              rotation=motion_rotation, shared_across_slices=True,
+                              frame_times=frame_times)
+        signal = np.where(np.isnan(signal), np.nan, res.aligned).astype(signal.dtype)
+        motion = FrameMotion(res.dy_mm, res.dx_mm, res.angle_deg, res.measured, offsets_ppm,
+                             res.max_displacement_mm)
+        seconds["motion"] = time.perf_counter() - t0
     t0 = time.perf_counter()
-    spec = quant.normalize(signal, offsets_ppm, m0_threshold_ppm=m0_threshold_ppm)
+    spec = quant.normalize(signal, offsets_ppm, m0=m0, m0_threshold_ppm=m0_threshold_ppm)
     mask = quant.brain_mask(spec.m0)
     z = np.where(mask[..., None], spec.z, np.nan).astype(spec.z.dtype, copy=False)
     t1 = time.perf_counter()
     seconds["normalise"] = t1 - t0
-    shift = quant.estimate_b0_shift(z, spec.offsets_ppm)
+    if b0_shift_ppm is None:
+        shift = quant.estimate_b0_shift(z, spec.offsets_ppm)
+    else:
+        shift = np.asarray(b0_shift_ppm)
+        if shift.shape != z.shape[:-1]:
+            raise ValueError(f"b0_shift_ppm has shape {shift.shape}, the series "
+                             f"{z.shape[:-1]}")
     b0 = quant.correct_b0(z, spec.offsets_ppm, shift_ppm=shift)
     seconds["b0"] = time.perf_counter() - t1
+    b1_outside = None
+    if b1_rel is not None:
+        b1_rel = np.asarray(b1_rel, dtype=np.float32)
+        if b1_rel.shape != mask.shape:
+            raise ValueError(f"b1_rel has shape {b1_rel.shape}, the series {mask.shape}")
+        with np.errstate(invalid="ignore"):
+            b1_outside = mask & ~(np.abs(b1_rel - 1.0) <= b1_tolerance)
+    if t1_s is not None and np.shape(t1_s) != mask.shape:
+        raise ValueError(f"t1_s has shape {np.shape(t1_s)}, the series {mask.shape}")
     return Prepared(
         z=b0.z, offsets_ppm=spec.offsets_ppm, m0=spec.m0, mask=mask,
         shift_ppm=b0.shift_ppm, valid=b0.valid, seconds=seconds, z_uncorrected=z,
         saturation=dict(saturation or {}),
+        t1_s=None if t1_s is None else np.asarray(t1_s, dtype=np.float32),
+        b1_rel=b1_rel, b1_outside=b1_outside, motion=motion,
+        b0_source="internal" if b0_shift_ppm is None else "wassr",
+        m0_source="series" if m0 is None else "companion",
     )
+
+
+def _frame_times(series: AssembledSeries) -> np.ndarray | None:
+    """AcquisitionNumber of each column in the first slice, when every column has a distinct
+    one (classic series); None otherwise (the frame index is then used)."""
+    row = series.sources[0] if series.sources else []
+    try:
+        times = [float(ds.AcquisitionNumber) for ds in row]  # type: ignore[union-attr]
+    except (AttributeError, TypeError, ValueError):
+        return None
+    return np.asarray(times) if len(set(times)) == len(times) else None
+
+
+def prepare_series(series: AssembledSeries, protocol: Protocol) -> Prepared:
+    """:func:`prepare` for an assembled series with its protocol's settings and companions.
+
+    M0, WASSR, T1 and B1 companions (``series.companions``) are used as :func:`prepare`
+    describes; the WASSR shift comes from :func:`quant.wassr.wassr_shift` with the rule's
+    method. ``motion_correction`` and ``motion_rotation`` come from the protocol.
+    """
+    comps = series.companions
+    seconds: dict[str, float] = {}
+    shift = None
+    if "wassr" in comps:
+        t0 = time.perf_counter()
+        rule = protocol.companion("wassr")
+        w = comps["wassr"]
+        assert w.offsets_ppm is not None
+        shift = wassr_shift(w.values, w.offsets_ppm,
+                            method=rule.wassr_method if rule is not None else "symmetry"
+                            ).shift_ppm
+        seconds["wassr"] = time.perf_counter() - t0
+    b1_rule = protocol.companion("b1")
+    spacing = (1.0, 1.0)
+    if series.references and "PixelSpacing" in series.references[0]:
+        ps = series.references[0].PixelSpacing
+        spacing = (float(ps[0]), float(ps[1]))
+    prep = prepare(
+        series.signal, series.offsets_ppm, m0_threshold_ppm=protocol.m0_threshold_ppm,
+        saturation={"b1_ut": protocol.b1_ut, "tsat_s": protocol.tsat_s,
+                    "field_t": protocol.field_t},
+        m0=comps["m0"].values if "m0" in comps else None,
+        b0_shift_ppm=shift,
+        t1_s=comps["t1"].values if "t1" in comps else None,
+        b1_rel=comps["b1"].values if "b1" in comps else None,
+        b1_tolerance=b1_rule.b1_tolerance if b1_rule is not None else 0.2,
+        motion_correction=protocol.motion_correction,
+        motion_rotation=protocol.motion_rotation,
+        spacing_mm=spacing,
+        frame_times=_frame_times(series) if protocol.motion_correction else None,
+    )
+    prep.seconds = {**seconds, **prep.seconds}
+    return prep
 
 
 def _call(info: object, z: np.ndarray, offsets: np.ndarray, t1: np.ndarray | None,
@@ -92,6 +237,7 @@ def compute(
 ) -> MethodResult:
     """Run one registered method on prepared spectra.
 
+    ``t1_s`` defaults to the T1 companion's map (``prep.t1_s``) when there is one.
     Model-free methods run on the whole array at once. With ``chunk_voxels``, the method
     runs on the brain voxels in chunks of that many (the fits of the deferred pass), and
     ``between_chunks(done, total)`` is called before each chunk: it may wait (to give way to
@@ -99,6 +245,8 @@ def compute(
     :class:`Abandoned`.
     """
     info = METHODS[name]
+    if t1_s is None:
+        t1_s = prep.t1_s
     z = prep.z if info.needs_b0 or prep.z_uncorrected is None else prep.z_uncorrected
     t0 = time.perf_counter()
     if chunk_voxels is None:
