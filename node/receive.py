@@ -47,7 +47,11 @@ from pydicom.uid import (
     EnhancedMRImageStorage,
     ExplicitVRLittleEndian,
     ImplicitVRLittleEndian,
+    JPEG2000Lossless,
+    JPEGLosslessSV1,
+    JPEGLSLossless,
     MRImageStorage,
+    RLELossless,
 )
 from pynetdicom import AE, evt
 from pynetdicom.sop_class import Verification  # type: ignore[attr-defined]
@@ -78,7 +82,10 @@ STATUS_BAD_HEADER = 0xC001
 
 STORAGE_CLASSES = (MRImageStorage, EnhancedMRImageStorage)
 """SOP classes the node accepts as Storage SCP."""
-TRANSFER_SYNTAXES = (ExplicitVRLittleEndian, ImplicitVRLittleEndian)
+TRANSFER_SYNTAXES = (ExplicitVRLittleEndian, ImplicitVRLittleEndian,
+                     # lossless compressed syntaxes, decoded once on arrival by pydicom's pixel
+                     # handlers (python-gdcm for the JPEG family; pydicom's own RLE decoder)
+                     JPEGLosslessSV1, JPEGLSLossless, JPEG2000Lossless, RLELossless)
 
 
 def _status(code: int, comment: str = "") -> Dataset:
