@@ -143,8 +143,9 @@ class DaskEngine:
         # a series' clock marks are this machine's wall-clock times, which a worker's clock
         # need not agree with; offline work has no scanner waiting: the budget starts there
         sent = [replace(s, clock={}) for s in series]
-        cfg = self.client.scatter(self.config, broadcast=True)
-        futures = {self.client.submit(_collect_pass, cfg, s, self.keep_maps, pure=False): i
+        # the config is small: it travels with each task (a scattered copy shares one key
+        # across runs, and a run's release of it can race the next run's use)
+        futures = {self.client.submit(_collect_pass, self.config, s, self.keep_maps, pure=False): i
                    for i, s in enumerate(sent)}
         outcomes: list[SeriesOutcome | None] = [None] * len(sent)
         jobs: list[tuple[int, DeferredJob]] = []
