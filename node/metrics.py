@@ -150,15 +150,12 @@ class NodeMetrics:
             name, method = stage_labels(str(stage))
             self.stage.labels(protocol, name, method).observe(float(ms) / 1000.0)
         if record.get("pass") == "deferred":
-            self.send_failed(int(record.get("unsent") or 0))
             if record.get("deferred_ms") is not None:
                 self.deferred.labels(protocol).observe(float(record["deferred_ms"]) / 1000.0)
             if not record.get("ok", True):
                 self.series_failed.labels(protocol).inc()
             return
         self.series.labels(protocol).inc()
-        # objects the outbox keeps for a retry (the durable path records them, not reports)
-        self.send_failed(int(record.get("unsent") or 0))
         self.instances.labels(protocol).inc(int(record.get("instances") or 0))
         if not record.get("ok", True):
             self.series_failed.labels(protocol).inc()

@@ -19,6 +19,7 @@ from prometheus_client.parser import text_string_to_metric_families
 
 from node.config import ConfigError, MetricsSettings, default_config, parse_config
 from node.metrics import NodeMetrics, metrics_for, stage_labels
+from node.send import Destination, ItemResult, SendReport
 from node.service import Node, SeriesOutcome
 from node.synth import series_from_arrays, write_series
 from quant.phantom import make_phantom
@@ -151,7 +152,11 @@ def test_each_node_has_its_own_registry_and_ratio():
            "instances": 10, "primary_ms": 400.0, "total_ms": 900.0, "budget_s": 1.0,
            "budget_met": True, "ok": True, "skipped": {}}
     a.observe(rec)
-    a.observe({**rec, "total_ms": 1500.0, "budget_met": False, "unsent": 3})
+    a.observe({**rec, "total_ms": 1500.0, "budget_met": False})
+    # one destination stored 2 of 5 objects: 3 send failures
+    items = [ItemResult(i, "1.2.840.10008.5.1.4.1.1.4", f"2.25.{i}",
+                        outcome="stored" if i < 2 else "failed") for i in range(5)]
+    a.observe_send("mtr_asym", [SendReport("k", Destination("A", "127.0.0.1", 104), items)])
     a.observe({**rec, "pass": "deferred", "budget_met": None, "total_ms": None,
                "deferred_ms": 4000.0, "stages_ms": {"method:lda": 3900.0}})
     a.refusal(0x0000)
