@@ -45,7 +45,8 @@ def connect(address: str, *, n_workers: int | None = None) -> Any:
 
     The local cluster has worker processes with one thread each (numpy releases the GIL only
     in parts of a fit, so processes scale better than threads), ``n_workers`` of them (default:
-    the CPU count), and no dashboard.
+    the CPU count), and its HTTP endpoint on a port the OS picks (``":0"``: ``None`` still
+    binds the default 8787, so two clusters on one machine would collide).
     """
     try:
         from distributed import Client, LocalCluster
@@ -53,7 +54,7 @@ def connect(address: str, *, n_workers: int | None = None) -> Any:
         raise ValueError("--dask needs the optional dependency: pip install 'cest-node[dask]'") from None
     if address == "local":
         cluster = LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True,
-                               dashboard_address=None)
+                               dashboard_address=":0")
         return Client(cluster)
     if "://" not in address and ":" not in address:
         raise ValueError(f"--dask: expected a scheduler address like tcp://HOST:8786 or 'local', "

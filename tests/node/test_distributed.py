@@ -27,7 +27,7 @@ METHODS = ("mtr_asym", "apt_star", "lda", "multi_lorentzian")
 @pytest.fixture(scope="module")
 def client():
     cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                       dashboard_address=None)
+                                       dashboard_address=":0")
     c = distributed.Client(cluster)
     try:
         yield c
