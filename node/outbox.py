@@ -220,6 +220,7 @@ class Outbox:
         """
         dest = str(report.destination)
         now = time.time()
+        wait: float | None = None  # one wait for the whole batch: it is retried together
         retry_at: list[float] = []
         failed_now: list[tuple[str, str]] = []
         with self._lock:
@@ -243,7 +244,9 @@ class Outbox:
                             failed_now.append((uid, item.detail or "not stored"))
                         else:
                             state = "retrying"
-                            next_at = now + self.policy.delay(attempts, self.rng)
+                            if wait is None:
+                                wait = self.policy.delay(attempts, self.rng)
+                            next_at = now + wait
                             retry_at.append(next_at)
                     self._db.execute(
                         "UPDATE sends SET state = ?, attempts = ?, next_at = ?, updated_at = ?, "
@@ -256,10 +259,9 @@ class Outbox:
                 raise
         unsent = len(retry_at) + len(failed_now)
         if retry_at:
-            wait = min(retry_at) - now
             log.warning("series %s: %d of %d objects not stored at %s; retry in %.1f s "
                         "(retrying for up to %g s)", series_key, len(retry_at),
-                        len(report.items), dest, wait, self.policy.retry_for_s)
+                        len(report.items), dest, min(retry_at) - now, self.policy.retry_for_s)
             with self.changed:
                 self.changed.notify_all()
         if failed_now:
