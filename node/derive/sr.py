@@ -52,8 +52,9 @@ def _private(value: str, meaning: str) -> CodedConcept:
     return CodedConcept(value, PRIVATE_SCHEME, meaning)
 
 
-# Our concepts (no standard code says these; from memory of PS3.16 CID 7469/7470/7472,
-# none of which has a voxel count, an asymmetry index or a water-shift range).
+# Our concepts: pydicom's copy of the PS3.16 code dictionaries (codes.DCM, codes.SCT) has no
+# concept for a voxel count, a hemispheric asymmetry index, a water-shift range, a frame
+# displacement or a QC gate (searched by name on this machine).
 VOXEL_COUNT = _private("CN-NVOXELS", "Number of voxels with a valid value")
 ASYMMETRY_INDEX = _private("CN-ASYM-INDEX", "Hemispheric asymmetry index 2(L-R)/(L+R)")
 HEMI_DIFFERENCE = _private("CN-HEMI-DIFF", "Left minus right hemisphere mean")
