@@ -74,6 +74,21 @@ def _readable(path: Path | None, what: str) -> str:
     return str(path)
 
 
+class _ClosingSSLSocket(ssl.SSLSocket):
+    """An SSLSocket whose ``shutdown`` never raises.
+
+    pynetdicom closes a socket only after ``shutdown`` succeeded; after a failed handshake
+    (a peer without an acceptable certificate) ``shutdown`` raises, and the file descriptor
+    would leak with every refused peer.
+    """
+
+    def shutdown(self, how: int) -> None:
+        try:
+            super().shutdown(how)
+        except OSError:
+            pass
+
+
 class _LazyHandshakeContext(ssl.SSLContext):
     """A server context whose sockets do their handshake on first use, not when wrapped.
 
@@ -97,6 +112,7 @@ def server_context(settings: TlsSettings) -> ssl.SSLContext:
         A certificate, key or CA file is missing or cannot be loaded (the message names it).
     """
     ctx = _LazyHandshakeContext(ssl.PROTOCOL_TLS_SERVER)
+    ctx.sslsocket_class = _ClosingSSLSocket
     ctx.minimum_version = MINIMUM_VERSION
     cert, key = _readable(settings.cert_file, "cert_file"), _readable(settings.key_file, "key_file")
     try:
@@ -129,6 +145,7 @@ def client_context(settings: TlsSettings) -> ssl.SSLContext:
     except (ssl.SSLError, OSError) as exc:
         raise ValueError(f"tls.ca_file: cannot load {ca} ({exc})") from None
     ctx.minimum_version = MINIMUM_VERSION
+    ctx.sslsocket_class = _ClosingSSLSocket
     ctx.check_hostname = settings.check_hostname
     ctx.verify_mode = ssl.CERT_REQUIRED
     if settings.cert_file is not None:
