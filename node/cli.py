@@ -43,6 +43,16 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
     cfg = _load(args.config, port=args.port, ae_title=args.ae_title, spool_dir=args.spool,
                 log_dir=args.log_dir, destinations=args.dest or None)
+    if args.metrics_port is not None:  # --metrics-port turns the endpoint on
+        from dataclasses import replace as _replace
+
+        from node.config import ConfigError, _port
+        try:
+            port = _port(args.metrics_port, "--metrics-port", allow_zero=True)
+        except ConfigError as exc:
+            print(f"cest-node serve: {exc}", file=sys.stderr)
+            return 2
+        cfg = cfg.with_overrides(metrics=_replace(cfg.metrics, enabled=True, port=port))
     from node.health import format_report, self_test
 
     checks = self_test()  # the numbers must be right on this machine before a scan
@@ -60,6 +70,8 @@ def cmd_serve(args: argparse.Namespace) -> int:
     with Node(cfg) as node:
         print(f"{BANNER}\nlistening as {cfg.ae_title} on {cfg.host}:{node.port}; "
               f"latency log {cfg.log_dir}/latency.jsonl", flush=True)
+        if node.metrics.port is not None:
+            print(f"metrics on http://{cfg.metrics.host}:{node.metrics.port}/metrics", flush=True)
         stop.wait()
     return 0
 
@@ -261,6 +273,26 @@ def cmd_health(args: argparse.Namespace) -> int:
     return 0 if all(c.ok for c in checks) else 1
 
 
+# ------------------------------------------------------------------------------ stats
+def cmd_stats(args: argparse.Namespace) -> int:
+    from node import stats
+
+    try:
+        since = stats.parse_time(args.since, what="--since") if args.since else None
+        until = stats.parse_time(args.until, what="--until") if args.until else None
+        log_dir = Path(args.log_dir) if args.log_dir else _load(args.config).log_dir
+        records = stats.read_records(log_dir, since=since, until=until)
+        summary = stats.summarize(records)
+        print(stats.format_summary(summary, since=since, until=until))
+        if args.plot:
+            out = stats.plot(records, args.plot)
+            print(f"plot written to {out}")
+    except ValueError as exc:  # ConfigError is a ValueError too
+        print(f"cest-node stats: {exc}", file=sys.stderr)
+        return 1
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     ap = argparse.ArgumentParser(prog="cest-node", description=f"{BANNER} APT/CEST maps from "
                                  "the saturation series, back to the archive.")
@@ -276,7 +308,21 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--log-dir", help="latency log folder")
     s.add_argument("--dest", action="append", metavar="AE@HOST:PORT",
                    help="destination (repeatable; replaces the config's destinations)")
+    s.add_argument("--metrics-port", type=int, metavar="PORT",
+                   help="serve Prometheus metrics on this port (0: any free one); the host "
+                        "is the config's [metrics] host, loopback by default")
     s.set_defaults(func=cmd_serve)
+
+    s = sub.add_parser("stats", help="latency figures of a period from the latency log")
+    where = s.add_mutually_exclusive_group()
+    where.add_argument("--log-dir", help="folder holding latency.jsonl")
+    where.add_argument("--config", help="take the log folder from this config (default: the "
+                       "embedded default)")
+    s.add_argument("--since", metavar="ISO", help="first time (ISO 8601, UTC unless stated)")
+    s.add_argument("--until", metavar="ISO", help="end time, exclusive (ISO 8601)")
+    s.add_argument("--plot", metavar="FILE.png",
+                   help="also draw end-to-end latency per series against the budget")
+    s.set_defaults(func=cmd_stats)
 
     s = sub.add_parser("process", help="process DICOM files offline, or studies from an archive")
     s.add_argument("paths", nargs="*", metavar="PATH")
@@ -342,7 +388,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     _setup_logging(args.verbose, quiet=args.command in ("demo", "process", "phantom", "echo",
                                                         "check-config", "conformance", "health",
-                                                        "status")
+                                                        "status", "stats")
                    and args.verbose == 0)
     try:
         return int(args.func(args))

@@ -245,6 +245,10 @@ class _NoMetrics:
     def observe_send(self, method: str, reports: Iterable[Any]) -> None:
         return None
 
+    def serve(self, host: str = "127.0.0.1", port: int = 9464) -> int:
+        _prometheus()  # raises the ValueError that names the missing package
+        raise ValueError("metrics.enabled: prometheus_client is not installed")
+
     def stop(self) -> None:
         return None
 
