@@ -188,8 +188,9 @@ def measured_parts(record: Mapping[str, Any]) -> dict[str, dict[str, float]]:
     """What each method of a series cost, from its latency record's ``stages_ms``.
 
     ``{method: {"compute", "build", "send", "total"}}`` in seconds, the same shape as the
-    plan's ``predicted_parts_s``. Stage names: ``method:NAME``, ``build:NAME:KIND``,
-    ``send:NAME`` (or ``write:NAME`` offline).
+    plan's ``predicted_parts_s``. Stage names: ``method:NAME``, ``build:NAME:KIND``, and for
+    the send part ``outbox:NAME`` (the durable write before sending) with ``send:NAME`` (or
+    ``write:NAME`` offline).
     """
     stages = record.get("stages_ms") or {}
     out: dict[str, dict[str, float]] = {}
@@ -198,7 +199,8 @@ def measured_parts(record: Mapping[str, Any]) -> dict[str, dict[str, float]]:
         if len(parts) < 2:
             continue
         kind, name = parts[0], parts[1]
-        slot = {"method": "compute", "build": "build", "send": "send", "write": "send"}.get(kind)
+        slot = {"method": "compute", "build": "build", "send": "send", "write": "send",
+                "outbox": "send"}.get(kind)
         if slot is None:
             continue
         m = out.setdefault(name, {"compute": 0.0, "build": 0.0, "send": 0.0})
@@ -206,7 +208,7 @@ def measured_parts(record: Mapping[str, Any]) -> dict[str, dict[str, float]]:
     for m in out.values():
         m["total"] = m["compute"] + m["build"] + m["send"]
         for k in m:
-            m[k] = round(m[k], 4)
+            m[k] = round(m[k], 6)
     return out
 
 
@@ -228,11 +230,14 @@ def learn_from_record(cost: CostModel, record: dict[str, Any]) -> None:
         if parts[0] == "build" and len(parts) == 3:
             cost.learn_build(parts[2], seconds=float(ms) / 1000.0, n_slices=slices)
             built.setdefault(parts[1], []).append(parts[2])
+    delivered: dict[str, float] = {}  # the outbox's durable write counts as part of sending
     for stage, ms in stages.items():
         parts = stage.split(":")
-        if parts[0] == "send" and len(parts) == 2 and parts[1] in built:
-            n = sum(objects_per_kind(k, slices) for k in built[parts[1]])
-            cost.learn_send(seconds=float(ms) / 1000.0, n_objects=n)
+        if parts[0] in ("send", "outbox") and len(parts) == 2 and parts[1] in built:
+            delivered[parts[1]] = delivered.get(parts[1], 0.0) + float(ms) / 1000.0
+    for name, seconds in delivered.items():
+        n = sum(objects_per_kind(k, slices) for k in built[name])
+        cost.learn_send(seconds=seconds, n_objects=n)
 
 
 _CACHE: dict[tuple[Any, ...], CalibrationReport] = {}

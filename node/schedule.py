@@ -171,7 +171,7 @@ def plan_methods(
         part = cost.predict_parts(name, n_voxels=n_voxels, n_slices=n_slices, outputs=kinds)
         p = part["total"]
         predicted[name] = round(p, 4)
-        parts[name] = {k: round(v, 4) for k, v in part.items()}
+        parts[name] = {k: round(v, 6) for k, v in part.items()}
         if i == 0 or name == primary:
             run.append(name)
             left -= p
