@@ -52,7 +52,10 @@ class CostModel:
     build_s_per_slice: dict[str, float] = field(
         default_factory=lambda: dict(DEFAULT_BUILD_S_PER_SLICE))
     build_s_fixed: dict[str, float] = field(default_factory=lambda: dict(DEFAULT_BUILD_S_FIXED))
-    send_s_per_object: float = 0.004
+    #: 10 ms per derived object, outbox write included: measured on the development machine
+    #: (41 objects of a 20-slice method in 0.44 s to storescp, tests/bench/bench_stages.py);
+    #: refreshed from every series' measured send
+    send_s_per_object: float = 0.010
     alpha: float = 0.3
 
     @classmethod
