@@ -53,9 +53,10 @@ from pydicom.uid import (
     MRImageStorage,
     RLELossless,
 )
-from pynetdicom import AE, evt
+from pynetdicom import AE, PYNETDICOM_IMPLEMENTATION_UID, PYNETDICOM_IMPLEMENTATION_VERSION, evt
 from pynetdicom.sop_class import Verification  # type: ignore[attr-defined]
 
+from node import fastpath
 from node.assemble import Assembler, AssemblyError, Placed
 from node.config import NodeConfig
 from node.spool import Spool, SpoolError
@@ -180,6 +181,11 @@ class Receiver:
         :class:`~node.types.AssembledSeries` (see :class:`~node.assemble.Assembler`).
     spool
         An existing :class:`~node.spool.Spool` (default: one at ``config.spool_dir``).
+    fast_path
+        Serve C-STOREs through :mod:`node.fastpath` (pynetdicom's internals, tested versions
+        only; anything it does not handle still goes through the library). None (default):
+        on whenever :func:`node.fastpath.supported` says so. Both paths store the same bytes
+        and answer the same statuses.
 
     Attributes
     ----------
@@ -200,8 +206,10 @@ class Receiver:
         on_complete: Callable[[AssembledSeries], None],
         *,
         spool: Spool | None = None,
+        fast_path: bool | None = None,
     ):
         self.config = config
+        self.fast_path = fastpath.supported()[0] if fast_path is None else bool(fast_path)
         self.spool = spool if spool is not None else Spool(config.spool_dir, fsync=config.fsync)
         self._user_on_complete = on_complete
         self.assembler = Assembler(config, self._on_complete, on_held=self._on_held)
@@ -272,6 +280,8 @@ class Receiver:
                 sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
         except (AttributeError, OSError) as exc:
             log.warning("could not set TCP_NODELAY on an accepted socket: %s", exc)
+        if self.fast_path:
+            fastpath.install(event.assoc, self._fast_store, abstract_syntaxes=STORAGE_CLASSES)
 
     def _on_echo(self, event: Any) -> int:
         return STATUS_SUCCESS
@@ -352,81 +362,119 @@ class Receiver:
                    and np.array_equal(a.pixels, b.pixels)
                    for a, b in zip(first.frames, prep.frames, strict=True))
 
-    def _on_store_observed(self, event: Any) -> Dataset | int:
-        status = self._on_store(event)
+    def _observe(self, code: int) -> None:
         if self.on_status is not None:
             try:
-                self.on_status(status if isinstance(status, int) else int(status.Status))
+                self.on_status(code)
             except Exception:  # an observer never changes the answer to the peer
                 log.exception("C-STORE status observer failed")
-        return status
 
-    def _on_store(self, event: Any) -> Dataset | int:
+    def _on_store_observed(self, event: Any) -> Dataset | int:
+        """EVT_C_STORE (the library path): the data set bytes as received, to :meth:`_store`."""
         try:
-            raw = event.request.DataSet.getbuffer()
-            try:
-                broken = framing_problem(raw,
-                                         implicit=event.context.transfer_syntax.is_implicit_VR)
-            finally:
-                raw.release()
+            data = event.request.DataSet.getvalue()
+            ts = str(event.context.transfer_syntax)
+            requested = str(event.request.AffectedSOPClassUID)
         except Exception as exc:
-            broken = f"no data set ({type(exc).__name__})"
-        if broken:
-            log.warning("C-STORE: data set refused, %s", broken)
-            return _status(STATUS_CANNOT_UNDERSTAND, f"truncated or malformed: {broken}")
+            data, ts, requested = None, "", ""
+            problem = f"no data set ({type(exc).__name__})"
+        code, comment = (self._store(data, ts, requested, id(event.assoc)) if data is not None
+                         else self._refuse_unparsable(problem))
+        self._observe(code)
+        return _status(code, comment) if comment else code
+
+    def _fast_store(self, assoc: Any, req: fastpath.StoreRequest) -> tuple[int, str]:
+        """The fast path's C-STORE (see :mod:`node.fastpath`): the same :meth:`_store`."""
+        code, comment = self._store(req.dataset, req.transfer_syntax_uid, req.sop_class_uid,
+                                    id(assoc))
+        self._observe(code)
+        return code, comment
+
+    @staticmethod
+    def _refuse_unparsable(broken: str) -> tuple[int, str]:
+        log.warning("C-STORE: data set refused, %s", broken)
+        return STATUS_CANNOT_UNDERSTAND, f"truncated or malformed: {broken}"
+
+    def _store(self, data: bytes, ts: str, requested_class: str, assoc_id: int
+               ) -> tuple[int, str]:
+        """One C-STORE data set (bytes as sent) -> (PS3.7 status, ErrorComment or "").
+
+        Success is answered only once the instance is on disk in the spool (fsync'd when
+        configured), never before.
+        """
+        implicit = ts == str(ImplicitVRLittleEndian)
         try:
-            ds = event.dataset
-            ds.file_meta = event.file_meta
+            ds = fastpath.parse_dataset(data, ts)
+        except Exception as exc:
+            ds, parse_error = None, exc
+        # a data set the fast scanner read whole, without sequences, is known to be framed
+        # right; anything else gets the full walk (pydicom decodes truncation silently)
+        simple = (ds is not None and not implicit
+                  and all(getattr(e, "VR", None) != "SQ" for e in ds._dict.values()))
+        if not simple:
+            try:
+                broken = framing_problem(data, implicit=implicit)
+            except Exception as exc:
+                broken = f"no data set ({type(exc).__name__})"
+            if broken:
+                return self._refuse_unparsable(broken)
+        try:
+            if ds is None:
+                raise parse_error
             sop_class = str(ds.SOPClassUID)
             sop_uid = str(ds.SOPInstanceUID)
             study_uid, series_uid = str(ds.StudyInstanceUID), str(ds.SeriesInstanceUID)
+            prefix = fastpath.encode_part10_prefix(
+                sop_class, sop_uid, ts, implementation_class_uid=PYNETDICOM_IMPLEMENTATION_UID,
+                implementation_version=PYNETDICOM_IMPLEMENTATION_VERSION)
+            ds.file_meta = fastpath.file_meta_from_prefix(prefix)
         except Exception as exc:  # any parse error is the peer's data, never our crash
             log.warning("C-STORE: unparsable data set (%s)", type(exc).__name__)
-            return _status(STATUS_CANNOT_UNDERSTAND, f"unparsable data set: {type(exc).__name__}")
+            return STATUS_CANNOT_UNDERSTAND, f"unparsable data set: {type(exc).__name__}"
         key = series_key(study_uid, series_uid)
-        if sop_class != str(event.request.AffectedSOPClassUID):
+        if sop_class != requested_class:
             log.warning("series %s: SOP Class UID differs from the C-STORE request", key)
-            return _status(STATUS_SOP_MISMATCH, "SOPClassUID differs from the C-STORE request")
+            return STATUS_SOP_MISMATCH, "SOPClassUID differs from the C-STORE request"
         refused = self._limits(ds, key)
         if refused is not None:
-            return refused
+            return int(refused.Status), str(refused.get("ErrorComment", ""))
         try:
             prep = self.assembler.prepare(ds)
         except AssemblyError as exc:
             code = STATUS_SOP_MISMATCH if "PixelData: missing" in str(exc) else STATUS_BAD_HEADER
             log.warning("series %s: instance refused: %s", key, exc)
-            return _status(code, str(exc))
+            return code, str(exc)
         except Exception as exc:
             log.warning("series %s: instance refused, header unreadable (%s)", key,
                         type(exc).__name__)
-            return _status(STATUS_CANNOT_UNDERSTAND, f"unreadable header: {type(exc).__name__}")
+            return STATUS_CANNOT_UNDERSTAND, f"unreadable header: {type(exc).__name__}"
         if prep is None:
             log.info("series %s: matches no protocol; acknowledged and ignored", key)
-            return STATUS_SUCCESS
+            return STATUS_SUCCESS, ""
         stored = self.spool.path_for(key, sop_uid)
         if stored.exists():  # a duplicate SOP Instance UID: the first copy stays
             if not self._same_as_stored(prep, stored):
                 self._flag(key, "conflicting duplicate SOP Instance UID, first copy kept")
-                return STATUS_SUCCESS
+                return STATUS_SUCCESS, ""
             log.info("series %s: duplicate instance, same as the stored copy", key)
         else:
             try:
                 expected = prep.protocol.expected_count(prep.images_in_acquisition)
-                self.spool.store(key, sop_uid, event.encoded_dataset(include_meta=True),
+                self.spool.store(key, sop_uid, (prefix, data),
                                  protocol=prep.protocol.name, expected=expected)
             except SpoolError as exc:
                 log.error("%s", exc)
-                return _status(STATUS_OUT_OF_RESOURCES, "cannot write the instance to the spool")
+                return STATUS_OUT_OF_RESOURCES, "cannot write the instance to the spool"
         try:
             placed = self.assembler.place(prep)
         except AssemblyError as exc:
             self.spool.discard(key, sop_uid)
             self._flag(key, f"instance refused: {exc}")
-            return _status(STATUS_SOP_MISMATCH, str(exc))
+            return STATUS_SOP_MISMATCH, str(exc)
         if placed is Placed.ADDED:
             with self._assoc_lock:
-                self._assoc_series.setdefault(id(event.assoc), set()).add(key)
-        return STATUS_SUCCESS
+                self._assoc_series.setdefault(assoc_id, set()).add(key)
+        return STATUS_SUCCESS, ""
 
     def _on_assoc_end(self, event: Any) -> None:
         with self._assoc_lock:

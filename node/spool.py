@@ -168,11 +168,13 @@ class Spool:
         """Where an instance is (or would be) stored."""
         return self.root / series_key / f"{instance_hash(sop_instance_uid)}.dcm"
 
-    def store(self, series_key: str, sop_instance_uid: str, data: bytes | bytearray | memoryview,
+    def store(self, series_key: str, sop_instance_uid: str,
+              data: bytes | bytearray | memoryview | tuple[bytes, ...],
               *, protocol: str, expected: int | None = None) -> Path:
         """Write one instance atomically and index it; returns its path.
 
-        ``data`` is the whole DICOM file (PS3.10, with preamble and file meta). When this
+        ``data`` is the whole DICOM file (PS3.10, with preamble and file meta), or a tuple of
+        its consecutive parts (written in one ``writev``, no joined copy). When this
         returns, the file is in place (and fsync'd if configured): success may be answered.
         Storing the same SOP Instance UID again replaces the file (idempotent re-send).
 
@@ -192,10 +194,13 @@ class Spool:
                 self._known_dirs.add(series_key)
             fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
             try:
-                view = memoryview(data)
-                while view:
-                    n = os.write(fd, view)
-                    view = view[n:]
+                parts = data if isinstance(data, tuple) else (data,)
+                total = sum(len(p) for p in parts)
+                n = os.writev(fd, parts)
+                if n < total:  # a short write: finish it piece by piece
+                    view = memoryview(b"".join(parts))[n:]
+                    while view:
+                        view = view[os.write(fd, view):]
                 if self.fsync:
                     os.fsync(fd)
             finally:

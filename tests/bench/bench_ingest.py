@@ -1,0 +1,122 @@
+"""Benchmark: ingest of a 1,220-instance MR series, DCMTK storescu -> cest-node vs -> storescp.
+
+20 slices x 61 offsets x 128 x 128 uint16 (node.synth's convention, about 33 kB each), loopback,
+one association. The anchor is DCMTK ``storescp`` writing every object to disk; the node is
+:class:`node.receive.Receiver` (spool write, index row and frame decode into the series stack
+before each success status). Both peers run with ``TCP_NODELAY=1`` (the node sets it on every
+accepted socket). Runs are interleaved (anchor, node, anchor, node, ...) and the ratio is taken
+pair by pair, because storescp alone varies by a factor of two or more between runs here.
+
+Each configuration (fsync on and off; the fast path on and off) is its own set of pairs. The
+time is storescu's wall clock, from its start to its exit after the last response; the node's
+assembly of the complete series is waited for (not timed) before the next run.
+
+Run: ``.venv/bin/python -m tests.bench.bench_ingest [--runs 5] [--no-library]``
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import statistics
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+
+from node.config import parse_config
+from node.receive import Receiver
+from node.synth import series_from_arrays, write_series
+from tests.peers import StoreSCP, storescu
+
+SLICES, OFFSETS, SIZE = 20, 61, 128
+
+
+def make_files(root: Path) -> list[Path]:
+    """The benchmark series written as PS3.10 files (seeded)."""
+    rng = np.random.default_rng(2026)
+    offs = [-300.0, *np.linspace(-6.0, 6.0, OFFSETS - 1)]
+    signal = rng.uniform(0.3, 1.0, (SLICES, SIZE, SIZE, OFFSETS)).astype(np.float32)
+    return write_series(series_from_arrays(signal, offs, seed="bench-ingest"), root)
+
+
+def node_config(spool: Path, *, fsync: bool):
+    return parse_config({
+        "node": {"port": 0, "spool_dir": str(spool), "fsync": fsync, "idle_timeout_s": 60.0},
+        "protocols": [{
+            "name": "apt",
+            "match": {"attribute": "SeriesDescription", "regex": "^CEST APT phantom"},
+            "offset": {"tag": "(0029,xx10)", "private_creator": "CESTNODE SIM 1"},
+            "expected_offsets": OFFSETS, "expected_slices": SLICES,
+        }],
+    })
+
+
+def run_storescp(files: list[Path], folder: Path) -> float:
+    with StoreSCP(folder) as scp:
+        t0 = time.perf_counter()
+        storescu(scp.port, files, called_ae=scp.ae_title)
+        return time.perf_counter() - t0
+
+
+def run_node(files: list[Path], spool: Path, *, fsync: bool, fast_path: bool) -> float:
+    done = threading.Event()
+    got: list = []
+
+    def on_complete(series) -> None:
+        got.append(series)
+        done.set()
+
+    with Receiver(node_config(spool, fsync=fsync), on_complete, fast_path=fast_path) as rx:
+        t0 = time.perf_counter()
+        storescu(rx.port, files)
+        elapsed = time.perf_counter() - t0
+        if not done.wait(60):
+            raise RuntimeError("the node did not assemble the series")
+    (series,) = got
+    if not series.complete or series.instance_count != len(files):
+        raise RuntimeError(f"series incomplete: {series.missing}")
+    return elapsed
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--runs", type=int, default=5, help="pairs per configuration (>= 5)")
+    ap.add_argument("--no-library", action="store_true",
+                    help="skip the configurations with the fast path off")
+    args = ap.parse_args()
+    logging.basicConfig(level=logging.ERROR)
+    med = statistics.median
+    configs = [(True, True), (False, True)]
+    if not args.no_library:
+        configs += [(True, False), (False, False)]
+    summary = []
+    with tempfile.TemporaryDirectory() as tmp:
+        root = Path(tmp)
+        files = make_files(root / "series")
+        n = len(files)
+        k = 0
+        for fsync, fast in configs:
+            name = f"fsync {'on ' if fsync else 'off'}, fast path {'on ' if fast else 'off'}"
+            anchor, node, ratios = [], [], []
+            for run in range(args.runs):
+                k += 1
+                a = run_storescp(files, root / f"scp{k}")
+                b = run_node(files, root / f"spool{k}", fsync=fsync, fast_path=fast)
+                anchor.append(a)
+                node.append(b)
+                ratios.append(b / a)
+                print(f"{name}  pair {run + 1}: storescp {a:5.2f} s  cest-node {b:5.2f} s  "
+                      f"ratio {b / a:4.2f}", flush=True)
+            summary.append((name, med(anchor), med(node), med(ratios)))
+    print(f"\n{n} instances ({SLICES} x {OFFSETS} x {SIZE} x {SIZE}), median of {args.runs} "
+          "interleaved pairs:")
+    for name, a, b, r in summary:
+        print(f"  {name}: storescp {a:5.2f} s ({n / a:4.0f}/s)  cest-node {b:5.2f} s "
+              f"({n / b:4.0f}/s)  ratio (pairwise median) {r:4.2f}  goal <= 1.50")
+
+
+if __name__ == "__main__":
+    main()
