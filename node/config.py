@@ -40,13 +40,20 @@ __all__ = [
     "NodeConfig",
     "OffsetRule",
     "Protocol",
+    "QcSettings",
     "default_config",
     "load_config",
     "parse_config",
 ]
 
-OUTPUT_KINDS = ("parametric_map", "derived_mr", "secondary_capture")
+METHOD_OUTPUTS = ("parametric_map", "derived_mr", "secondary_capture")
+"""Output kinds built once per method (node.derive.BUILDERS)."""
+REPORT_OUTPUTS = ("structured_report", "segmentation", "summary")
+"""Output kinds built once per series from every model-free map (node.derive.REPORT_BUILDERS)."""
+OUTPUT_KINDS = METHOD_OUTPUTS + REPORT_OUTPUTS
 """Output kinds a protocol may ask for (builders in node/derive/)."""
+DEFAULT_OUTPUTS = METHOD_OUTPUTS + ("structured_report", "summary")
+"""What a protocol builds when it lists no outputs (the Segmentation is opt-in)."""
 
 _DEFAULT_RESOURCE = "node.toml"  # package data: node/node.toml, a copy of config/node.toml
 
@@ -194,6 +201,21 @@ class CompanionRule:
 
 
 @dataclass(frozen=True)
+class QcSettings:
+    """Limits of a protocol's QC gates (:class:`quant.qc.QcThresholds`; defaults are ours).
+
+    A map whose series fails a gate is still sent, but its SeriesDescription and the summary
+    page say why it is unreliable.
+    """
+
+    min_snr: float = 20.0
+    max_motion_mm: float = 2.0
+    min_valid_fraction: float = 0.9
+    max_abs_b0_ppm: float | None = None
+    candidate_n_sd: float = 2.0
+
+
+@dataclass(frozen=True)
 class Protocol:
     """How one kind of saturation series is recognised, assembled and processed.
 
@@ -242,7 +264,7 @@ class Protocol:
     required_offsets_ppm: tuple[float, ...] = (-3.5, 3.5)
     required_tolerance_ppm: float = 0.05
     methods: tuple[str, ...] = ("mtr_asym",)
-    outputs: tuple[str, ...] = OUTPUT_KINDS
+    outputs: tuple[str, ...] = DEFAULT_OUTPUTS
     budget_s: float = 10.0
     field_t: float = 3.0
     b1_ut: float = 1.0
@@ -251,6 +273,7 @@ class Protocol:
     companions: tuple[CompanionRule, ...] = ()
     motion_correction: bool = False
     motion_rotation: bool = False
+    qc: QcSettings = field(default_factory=QcSettings)
 
     def companion(self, kind: str) -> CompanionRule | None:
         """The companion rule of this kind, or None when the protocol has none."""
@@ -788,7 +811,7 @@ def _protocol(value: Any, key: str, known_methods: tuple[str, ...] | None) -> Pr
               "expected_slices", "m0_threshold_ppm", "required_offsets_ppm",
               "required_tolerance_ppm", "methods", "outputs", "budget_s", "field_t", "b1_ut",
               "tsat_s", "model_based", "companions", "motion_correction",
-              "motion_rotation"}, key)
+              "motion_rotation", "qc"}, key)
     for k in ("name", "match", "offset"):
         if k not in t:
             raise ConfigError(f"{key}.{k}: required")
@@ -829,7 +852,7 @@ def _protocol(value: Any, key: str, known_methods: tuple[str, ...] | None) -> Pr
                                   f"(known: {', '.join(sorted(known_methods))})")
     if len(set(methods)) != len(methods):
         raise ConfigError(f"{key}.methods: a method is listed twice")
-    outputs_raw = _array(t.get("outputs", list(OUTPUT_KINDS)), f"{key}.outputs")
+    outputs_raw = _array(t.get("outputs", list(DEFAULT_OUTPUTS)), f"{key}.outputs")
     outputs = tuple(_str(o, f"{key}.outputs[{i}]") for i, o in enumerate(outputs_raw))
     for i, o in enumerate(outputs):
         if o not in OUTPUT_KINDS:
@@ -866,6 +889,24 @@ def _protocol(value: Any, key: str, known_methods: tuple[str, ...] | None) -> Pr
         companions=_companions(t.get("companions", []), f"{key}.companions"),
         motion_correction=_bool(t.get("motion_correction", False), f"{key}.motion_correction"),
         motion_rotation=_bool(t.get("motion_rotation", False), f"{key}.motion_rotation"),
+        qc=_qc(t.get("qc", {}), f"{key}.qc"),
+    )
+
+
+def _qc(value: Any, key: str) -> QcSettings:
+    t = _table(value, key)
+    _only(t, {"min_snr", "max_motion_mm", "min_valid_fraction", "max_abs_b0_ppm",
+              "candidate_n_sd"}, key)
+    frac = _number(t.get("min_valid_fraction", 0.9), f"{key}.min_valid_fraction", ge=0)
+    if frac > 1:
+        raise ConfigError(f"{key}.min_valid_fraction: must be at most 1, got {frac:g}")
+    b0 = t.get("max_abs_b0_ppm")
+    return QcSettings(
+        min_snr=_number(t.get("min_snr", 20.0), f"{key}.min_snr", ge=0),
+        max_motion_mm=_number(t.get("max_motion_mm", 2.0), f"{key}.max_motion_mm", ge=0),
+        min_valid_fraction=frac,
+        max_abs_b0_ppm=None if b0 is None else _number(b0, f"{key}.max_abs_b0_ppm", gt=0),
+        candidate_n_sd=_number(t.get("candidate_n_sd", 2.0), f"{key}.candidate_n_sd", gt=0),
     )
 
 

@@ -22,11 +22,12 @@ from typing import Any
 
 import numpy as np
 from pydicom import Dataset
+from pydicom.uid import ParametricMapStorage as PARAMETRIC_MAP
 
 from node import pipeline
 from node.calibrate import CalibrationReport, calibrate_for, learn_from_record
 from node.config import NodeConfig, Protocol
-from node.derive import BUILDERS, DerivedRequest
+from node.derive import BUILDERS, REPORT_BUILDERS, DerivedRequest, ReportRequest, qc_note
 from node.metrics import metrics_for
 from node.outbox import Outbox, OutboxWorker, RetryPolicy
 from node.receive import Receiver
@@ -36,6 +37,15 @@ from node.send import Sender, SendReport, SendSettings
 from node.spool import Spool
 from node.timing import LatencyLog, SeriesClock
 from node.types import AssembledSeries, OutputBatch, uid_from
+from quant.qc import (
+    QcFigures,
+    QcReason,
+    QcThresholds,
+    b0_range,
+    qc_gates,
+    snr_from_m0,
+    valid_fraction,
+)
 from quant.registry import METHODS
 
 log = logging.getLogger("cest_node.service")
@@ -161,6 +171,7 @@ class Processor:
         clock = SeriesClock(series.key)
         clock.mark("deferred_start")
         outcome = SeriesOutcome(series.key, protocol.name, ok=True)
+        note = self._note(series, self._qc(job.prep, protocol)[1])
         for name in job.methods:
             last_log = [time.monotonic()]
 
@@ -176,7 +187,7 @@ class Processor:
                 with clock.stage(f"method:{name}"):
                     res = pipeline.compute(job.prep, name, chunk_voxels=self.CHUNK_VOXELS,
                                            between_chunks=progress)
-                self._emit(series, protocol, job.prep, res, clock, outcome)
+                self._emit(series, protocol, job.prep, res, clock, outcome, note=note)
                 log.info("series %s: deferred %s done in %.1f s", series.key, name, res.seconds)
             except pipeline.Abandoned as exc:
                 outcome.ok = False
@@ -205,11 +216,32 @@ class Processor:
         return DeferredJob(series, protocol, self._prepare(series, protocol), list(methods))
 
     def _prepare(self, series: AssembledSeries, protocol: Protocol) -> pipeline.Prepared:
-        return pipeline.prepare(
-            series.signal, series.offsets_ppm, m0_threshold_ppm=protocol.m0_threshold_ppm,
-            saturation={"b1_ut": protocol.b1_ut, "tsat_s": protocol.tsat_s,
-                        "field_t": protocol.field_t},
+        """Normalise, B0 (WASSR when a companion has it), T1/B1/M0 companions, motion."""
+        return pipeline.prepare_series(series, protocol)
+
+    @staticmethod
+    def _qc(prep: pipeline.Prepared, protocol: Protocol) -> tuple[QcFigures, list[QcReason]]:
+        """The series' QC figures (B0 range, SNR of M0, valid fraction, motion) and gates."""
+        mask = prep.mask
+        if not mask.any():
+            figures = QcFigures(valid_fraction=0.0)
+        else:
+            lo, hi = b0_range(prep.shift_ppm, mask)
+            offs = prep.offsets_ppm
+            figures = QcFigures(
+                b0_low_ppm=lo, b0_high_ppm=hi,
+                sampled_low_ppm=float(offs.min()), sampled_high_ppm=float(offs.max()),
+                snr=snr_from_m0(prep.m0, mask).snr,
+                max_motion_mm=None if prep.motion is None else prep.motion.max_displacement_mm,
+                valid_fraction=valid_fraction(np.where(prep.valid, 1.0, np.nan), mask),
+            )
+        q = protocol.qc
+        thresholds = QcThresholds(
+            min_snr=q.min_snr, max_motion_mm=q.max_motion_mm,
+            min_valid_fraction=q.min_valid_fraction, max_abs_b0_ppm=q.max_abs_b0_ppm,
+            measure_offset_ppm=3.5,
         )
+        return figures, qc_gates(figures, thresholds)
 
     # ------------------------------------------------------------------------------------
     def _process(self, series: AssembledSeries, protocol: Protocol, clock: SeriesClock,
@@ -224,7 +256,8 @@ class Processor:
             protocol.methods, registry=METHODS, cost=self.cost, n_voxels=n_voxels,
             n_slices=slices, n_outputs=len(protocol.outputs), budget_s=protocol.budget_s,
             elapsed_s=clock.since("last_instance") if "last_instance" in clock.marks else 0.0,
-            have_t1=False, deferred_enabled=protocol.model_based, outputs=protocol.outputs,
+            have_t1=prep.t1_s is not None, deferred_enabled=protocol.model_based,
+            outputs=protocol.outputs,
         )
         outcome.skipped = dict(plan.skipped)
         outcome.deferred = list(plan.deferred)
@@ -232,24 +265,76 @@ class Processor:
         clock.info["predicted_parts_s"] = plan.predicted_parts_s
         for name, why in plan.skipped.items():
             log.info("series %s: method %s skipped: %s", series.key, name, why)
+        with clock.stage("qc"):
+            figures, reasons = self._qc(prep, protocol)
+        note = self._note(series, reasons)
+        if reasons:
+            clock.info["qc"] = [r.code for r in reasons]
+            log.warning("series %s: QC gates failed: %s", series.key,
+                        "; ".join(r.message for r in reasons))
         measured: dict[str, float] = {}
+        results: list[tuple[pipeline.MethodResult, Dataset | None]] = []
         for name in plan.run:
             with clock.stage(f"method:{name}"):
                 res = pipeline.compute(prep, name)
             measured[name] = res.seconds
             self.cost.learn(name, seconds=res.seconds, n_voxels=max(res.n_voxels, 1))
-            self._emit(series, protocol, prep, res, clock, outcome)
+            built = self._emit(series, protocol, prep, res, clock, outcome, note=note)
+            results.append((res, next((d for d in built if d.SOPClassUID == PARAMETRIC_MAP),
+                                      None)))
             if name == plan.primary:
                 clock.mark("primary_ack")
         clock.info["measured_s"] = {k: round(v, 4) for k, v in measured.items()}
+        self._reports(series, protocol, prep, results, figures, reasons, clock, outcome)
         clock.mark("last_ack")
         outcome.ok = not outcome.error
         if plan.deferred:
             return DeferredJob(series, protocol, prep, list(plan.deferred))
         return None
 
+    @staticmethod
+    def _note(series: AssembledSeries, reasons: list[QcReason]) -> str:
+        """SeriesDescription note: the QC tags first (descriptions are cut at 64 characters)."""
+        parts = [qc_note(reasons), "" if series.complete else "incomplete series"]
+        return " ".join(p for p in parts if p)
+
+    def _reports(self, series: AssembledSeries, protocol: Protocol, prep: pipeline.Prepared,
+                 results: list[tuple[pipeline.MethodResult, Dataset | None]],
+                 figures: QcFigures, reasons: list[QcReason], clock: SeriesClock,
+                 outcome: SeriesOutcome) -> None:
+        """The per-series outputs (SR, summary page, Segmentation) from every model-free map,
+        sent after the per-method outputs so they never delay the primary."""
+        kinds = [k for k in REPORT_BUILDERS if k in protocol.outputs]
+        if not kinds or not results or not prep.mask.any():
+            return
+        source_uid = str(series.references[0].SeriesInstanceUID)
+        source_number = series.references[0].get("SeriesNumber")
+        datasets: list[Dataset] = []
+        for kind in kinds:
+            req = ReportRequest(
+                references=series.references,
+                maps={r.name: (r.title, r.unit_ucum, r.values) for r, _ in results},
+                mask=prep.mask,
+                series_uid=output_series_uid(source_uid, "report", kind),
+                series_number=output_series_number(source_number, "report", kind),
+                m0=prep.m0,
+                qc=figures,
+                qc_reasons=reasons,
+                parametric_maps={r.name: pm for r, pm in results if pm is not None},
+                display_ranges={r.name: pipeline.display_range(r.values) for r, _ in results},
+                candidate_n_sd=protocol.qc.candidate_n_sd,
+                note="" if series.complete else "incomplete series",
+            )
+            with clock.stage(f"build:report:{kind}"):
+                datasets.extend(REPORT_BUILDERS[kind](req))
+        ok = self.deliver(OutputBatch(series.key, datasets, label="report"), clock)
+        if not ok:
+            outcome.error = outcome.error or "report: not every object was stored"
+        outcome.objects += len(datasets)
+
     def _emit(self, series: AssembledSeries, protocol: Protocol, prep: pipeline.Prepared,
-              res: pipeline.MethodResult, clock: SeriesClock, outcome: SeriesOutcome) -> None:
+              res: pipeline.MethodResult, clock: SeriesClock, outcome: SeriesOutcome,
+              *, note: str | None = None) -> list[Dataset]:
         """Build every configured output of one method and deliver them as one batch."""
         name = res.name
         if self.keep_maps:
@@ -271,7 +356,7 @@ class Processor:
                 series_number=output_series_number(source_number, name, kind),
                 m0=prep.m0 if kind == "secondary_capture" else None,
                 display_range=lo_hi,
-                note="" if series.complete else "incomplete series",
+                note=self._note(series, []) if note is None else note,
             )
             with clock.stage(f"build:{name}:{kind}"):
                 datasets.extend(BUILDERS[kind](req))
@@ -280,6 +365,7 @@ class Processor:
             outcome.error = outcome.error or f"{name}: not every object was stored"
         outcome.objects += len(datasets)
         outcome.methods.append(name)
+        return datasets
 
 
 class Node:

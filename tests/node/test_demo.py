@@ -15,5 +15,7 @@ def test_demo_runs_end_to_end(tmp_path: Path, capsys):
     assert "primary outputs acknowledged" in out
     assert "deferred pass (lda): done" in out
     pngs = list((tmp_path / "out" / "previews").glob("*.png"))
-    assert len(pngs) == 2 * 3  # one Secondary Capture per slice for mtr_asym, apt_star, lda
-    assert len(list((tmp_path / "out").rglob("*.dcm"))) == 3 * (1 + 2 * 2)
+    # one Secondary Capture per slice for mtr_asym, apt_star, lda, and the summary page
+    assert len(pngs) == 2 * 3 + 1
+    # per method: PM + 2 MR + 2 SC; per series: SR + summary page
+    assert len(list((tmp_path / "out").rglob("*.dcm"))) == 3 * (1 + 2 * 2) + 2

@@ -98,9 +98,10 @@ def test_storescu_to_node_to_storescp(tmp_path, phantom, series_files):
     assert outcome.methods == ["mtr_asym", "apt_star"]
     assert set(outcome.skipped) == {"arex", "mtr_asym_t1"}
     assert later.methods == ["lda"]
-    # one Parametric Map, SLICES derived MR and SLICES Secondary Captures per method
-    assert len(series) == 3 * len(methods)
-    assert len(files) == len(methods) * (1 + 2 * SLICES)
+    # one Parametric Map, SLICES derived MR and SLICES Secondary Captures per method, plus
+    # one Structured Report and one summary page per series
+    assert len(series) == 3 * len(methods) + 2
+    assert len(files) == len(methods) * (1 + 2 * SLICES) + 2
     for dsets in series.values():
         for ds in dsets:
             # DICOM PS3.3 C.12.1: Content Qualification RESEARCH marks research content
@@ -111,8 +112,13 @@ def test_storescu_to_node_to_storescp(tmp_path, phantom, series_files):
     one_of_each = {}
     for f in files:
         one_of_each.setdefault(str(dcmread(f, stop_before_pixels=True).SOPClassUID), f)
-    assert len(one_of_each) == 3
+    assert len(one_of_each) == 4  # PM, MR, SC, Comprehensive 3D SR
     assert_dciodvfy_clean(one_of_each.values())
+    # the SR is preliminary and unverified research content (its numbers are checked against
+    # numpy in test_derive_reports.py)
+    sr = next(d for dsets in series.values() for d in dsets
+              if d.SOPClassUID.name == "Comprehensive 3D SR Storage")
+    assert sr.PreliminaryFlag == "PRELIMINARY" and sr.VerificationFlag == "UNVERIFIED"
     # the Parametric Map holds the map, and the acidotic region has the lower MTRasym
     # (direction reported for ischemic tissue: Zhou et al., Nat Med 2003)
     pm = next(d for dsets in series.values() for d in dsets
@@ -152,7 +158,7 @@ def test_orthanc_receives_every_output(tmp_path, series_files):
         total = outcome.objects + later.objects
         assert orthanc.wait_for(total) == total
         series = orthanc.series()
-    assert len(series) == 3 * (len(outcome.methods) + len(later.methods))
+    assert len(series) == 3 * (len(outcome.methods) + len(later.methods)) + 2
     descriptions = sorted(s["MainDicomTags"]["SeriesDescription"] for s in series)
     assert all(d.startswith("RESEARCH") for d in descriptions)
 

@@ -56,7 +56,7 @@ def test_process_command_writes_outputs(tmp_path, datasets, capsys):
     written = sorted((tmp_path / "out").rglob("*.dcm"))
     kinds = {dcmread(f, stop_before_pixels=True).SOPClassUID.name for f in written}
     assert kinds == {"Parametric Map Storage", "MR Image Storage",
-                     "Secondary Capture Image Storage"}
+                     "Secondary Capture Image Storage", "Comprehensive 3D SR Storage"}
     assert (tmp_path / "out" / "logs" / "latency.jsonl").exists()
 
 
