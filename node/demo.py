@@ -12,16 +12,17 @@ from __future__ import annotations
 import shutil
 import tempfile
 import threading
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
 from pydicom import dcmread
 
 from node.archive import EmbeddedArchive
-from node.config import default_config
+from node.config import CompanionRule, MatchRule, default_config
 from node.send import Sender, SendSettings
 from node.service import Node, SeriesOutcome
-from node.synth import series_from_arrays
+from node.synth import series_from_arrays, t1_map_series
 
 SCANNER_AE = "PHANTOMSCAN"
 
@@ -35,8 +36,11 @@ def run_demo(*, out: str | None = None, slices: int = 8, size: int = 96, seed: i
     print("cest-node demo — research use only, not a medical device")
     print(f"phantom: {slices} slices of {size} x {size}, seed {seed} (synthetic, invented)")
     ph = make_phantom(slices=slices, size=size, seed=seed)
-    datasets = series_from_arrays(ph.signal, ph.offsets_ppm, seed=f"demo-{seed}-{slices}-{size}",
+    study_seed = f"demo-{seed}-{slices}-{size}"
+    datasets = series_from_arrays(ph.signal, ph.offsets_ppm, seed=study_seed,
                                   field_t=getattr(ph, "field_t", 3.0))
+    # the scanner's T1 map of the same study, sent first: it enables AREX and MTRasym/T1
+    t1_map = t1_map_series(ph.t1_s, seed=study_seed)
     order = np.random.default_rng(seed).permutation(len(datasets))
     scrambled = [datasets[i] for i in order]
 
@@ -55,11 +59,17 @@ def run_demo(*, out: str | None = None, slices: int = 8, size: int = 96, seed: i
                 destinations=[f"{archive.ae_title}@127.0.0.1:{archive.port}"],
                 allowed_calling_aets=[SCANNER_AE],
             )
+            t1_rule = CompanionRule(kind="t1", match=MatchRule("SeriesDescription", "^T1 map"),
+                                    timeout_s=10.0, unit="ms")
+            cfg = replace(cfg, protocols=tuple(replace(p, companions=(t1_rule,))
+                                               for p in cfg.protocols))
             with Node(cfg, on_outcome=on_outcome, keep_maps=True) as node:
                 assert node.port is not None
                 print(f"node {cfg.ae_title} on 127.0.0.1:{node.port}; archive "
                       f"{archive.ae_title} on 127.0.0.1:{archive.port}")
                 scanner = Sender(SendSettings(calling_ae=SCANNER_AE, retries=1))
+                rep = scanner.send(t1_map, (cfg.ae_title, "127.0.0.1", node.port))
+                print(f"scanner sent the T1 map ({rep.sent} instances)")
                 rep = scanner.send(scrambled, (cfg.ae_title, "127.0.0.1", node.port))
                 print(f"scanner sent {rep.sent}/{len(scrambled)} instances in scrambled order "
                       f"in {rep.elapsed_ms / 1000:.2f} s")
