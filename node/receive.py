@@ -210,6 +210,8 @@ class Receiver:
     ):
         self.config = config
         self.fast_path = fastpath.supported()[0] if fast_path is None else bool(fast_path)
+        self.fast_stores = 0
+        """C-STOREs served by the fast path so far (the rest went through the library)."""
         self.spool = spool if spool is not None else Spool(config.spool_dir, fsync=config.fsync)
         self._user_on_complete = on_complete
         self.assembler = Assembler(config, self._on_complete, on_held=self._on_held)
@@ -385,6 +387,7 @@ class Receiver:
 
     def _fast_store(self, assoc: Any, req: fastpath.StoreRequest) -> tuple[int, str]:
         """The fast path's C-STORE (see :mod:`node.fastpath`): the same :meth:`_store`."""
+        self.fast_stores += 1
         code, comment = self._store(req.dataset, req.transfer_syntax_uid, req.sop_class_uid,
                                     id(assoc))
         self._observe(code)

@@ -1,0 +1,243 @@
+"""node.fastpath: codecs checked against pynetdicom's and pydicom's own, and the fast receive path
+checked end to end with real peers (DCMTK storescu, a pynetdicom SCU) on 127.0.0.1.
+
+What the node stores must be byte for byte the data set that was sent (PS3.10: preamble, DICM,
+group 0002, then the data set as received), through the fast path and through the library.
+The receive tests of tests/node/test_receive.py run here a second time with the fast path off.
+"""
+
+from __future__ import annotations
+
+import random
+import threading
+from io import BytesIO
+from pathlib import Path
+
+import numpy as np
+import pytest
+from pydicom import Dataset, dcmread
+from pydicom.dataset import FileMetaDataset
+from pydicom.filereader import read_dataset
+from pydicom.sequence import Sequence
+from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian, MRImageStorage
+from pynetdicom import AE, PYNETDICOM_IMPLEMENTATION_UID, PYNETDICOM_IMPLEMENTATION_VERSION
+from pynetdicom.dimse_messages import C_ECHO_RQ, C_STORE_RQ, C_STORE_RSP
+from pynetdicom.dimse_primitives import C_ECHO, C_STORE
+from pynetdicom.dsutils import create_file_meta, encode, encode_file_meta
+from pynetdicom.sop_class import Verification  # type: ignore[attr-defined]
+
+from node import fastpath
+from node.config import parse_config
+from node.receive import STATUS_SOP_MISMATCH, Receiver
+from node.synth import series_from_arrays, write_series
+from tests.node import test_receive as _rx
+from tests.peers import storescu
+
+OFFSETS = [-300.0, 3.5, -3.5, 1.0, -1.0]
+SLICES = 2
+UID_CLASS = str(MRImageStorage)
+UID_INST = "1.2.826.0.1.3680043.10.999.1.2.3"  # odd length: padded
+
+
+def _library_command(primitive, message_cls) -> bytes:
+    """The command set bytes pynetdicom itself would put on the wire."""
+    msg = message_cls()
+    msg.primitive_to_message(primitive)
+    return encode(msg.command_set, True, True)
+
+
+# --------------------------------------------------------------------------- codecs
+@pytest.mark.parametrize(("status", "comment"), [(0x0000, ""), (0xA900, "Rows/Columns: 9 x 8"),
+                                                 (0xC001, "odd")])
+def test_store_response_is_the_library_encoding(status, comment):
+    # reference: pynetdicom's C_STORE_RSP message built from a primitive (PS3.7 9.3.1.2)
+    rsp = C_STORE()
+    rsp.MessageIDBeingRespondedTo = 17
+    rsp.AffectedSOPClassUID = UID_CLASS
+    rsp.AffectedSOPInstanceUID = UID_INST
+    rsp.Status = status
+    if comment:
+        rsp.ErrorComment = comment
+    ours = fastpath.encode_store_response(17, UID_CLASS, UID_INST, status, comment)
+    assert ours == _library_command(rsp, C_STORE_RSP)
+
+
+def test_store_command_parse_matches_the_library_request():
+    rq = C_STORE()
+    rq.MessageID = 4711
+    rq.AffectedSOPClassUID = UID_CLASS
+    rq.AffectedSOPInstanceUID = UID_INST
+    rq.Priority = 2
+    rq.MoveOriginatorApplicationEntityTitle = "MOVER"
+    rq.MoveOriginatorMessageID = 3
+    rq.DataSet = BytesIO(b"\x08\x00\x18\x00UI\x00\x00")  # any data set: CommandDataSetType
+    cmd = _library_command(rq, C_STORE_RQ)
+    mid, cls, inst, dtype = fastpath.parse_store_command(cmd)  # type: ignore[misc]
+    assert (mid, cls, inst) == (4711, UID_CLASS, UID_INST)
+    assert dtype != 0x0101  # a data set follows (PS3.7 Table E.1-1)
+    # anything else is left to the library: another command, a cut-short or foreign element
+    echo = C_ECHO()
+    echo.MessageID = 1
+    echo.AffectedSOPClassUID = Verification
+    assert fastpath.parse_store_command(_library_command(echo, C_ECHO_RQ)) is None
+    assert fastpath.parse_store_command(cmd[:-3]) is None
+    assert fastpath.parse_store_command(cmd + b"\x00\x00\x01\x09\x02\x00\x00\x00\x01\x00") is None
+    assert fastpath.parse_store_command(b"") is None
+
+
+def test_part10_prefix_is_what_pydicom_writes():
+    # reference: pydicom's encoding of pynetdicom's create_file_meta (PS3.10 7.1)
+    for ts in (ExplicitVRLittleEndian, ImplicitVRLittleEndian):
+        ours = fastpath.encode_part10_prefix(
+            UID_CLASS, UID_INST, str(ts), implementation_class_uid=PYNETDICOM_IMPLEMENTATION_UID,
+            implementation_version=PYNETDICOM_IMPLEMENTATION_VERSION)
+        meta = create_file_meta(sop_class_uid=UID_CLASS, sop_instance_uid=UID_INST,
+                                transfer_syntax=ts)
+        assert ours == b"\x00" * 128 + b"DICM" + encode_file_meta(meta)
+        back = fastpath.file_meta_from_prefix(ours)
+        assert isinstance(back, FileMetaDataset)
+        assert back.TransferSyntaxUID == ts and back.MediaStorageSOPInstanceUID == UID_INST
+
+
+def _raw_view(ds: Dataset) -> list[tuple]:
+    return [(int(e.tag), e.VR, e.length, e.value, e.value_tell) for e in ds._dict.values()]
+
+
+def test_parse_dataset_equals_pydicom_reader():
+    ds = series_from_arrays(np.ones((1, 4, 4, 2), np.float32), [-300.0, 3.5])[1]
+    buf = BytesIO()
+    ds.save_as(buf, enforce_file_format=True)
+    raw = buf.getvalue()
+    start = 132 + 12 + int.from_bytes(raw[140:144], "little")
+    data = raw[start:]
+    ours = fastpath.parse_dataset(data, str(ExplicitVRLittleEndian))
+    ref = read_dataset(BytesIO(data), False, True)
+    assert _raw_view(ours) == _raw_view(ref)
+    assert ours.original_encoding == ref.original_encoding
+    assert ours.original_character_set == ref.original_character_set
+    assert ours.SOPInstanceUID == ds.SOPInstanceUID and ours.PixelData == ds.PixelData
+    # an undefined-length sequence is not "simple": pydicom parses it, same result
+    ds.ReferencedImageSequence = Sequence([Dataset()])
+    ds.ReferencedImageSequence[0].ReferencedSOPInstanceUID = UID_INST
+    buf = BytesIO()
+    ds.save_as(buf, enforce_file_format=True)
+    raw = buf.getvalue()
+    data = raw[132 + 12 + int.from_bytes(raw[140:144], "little"):]
+    got = fastpath.parse_dataset(data, str(ExplicitVRLittleEndian))
+    assert got.ReferencedImageSequence[0].ReferencedSOPInstanceUID == UID_INST
+    # implicit VR always goes through pydicom
+    imp = fastpath.parse_dataset(encode(ds, True, True), str(ImplicitVRLittleEndian))
+    assert imp.SOPInstanceUID == ds.SOPInstanceUID
+
+
+def test_supported_names_the_version():
+    ok, why = fastpath.supported()
+    assert ok, why  # pyproject pins pynetdicom to the tested range
+
+
+# --------------------------------------------------------------------------- end to end
+def _cfg(tmp_path: Path, **node):
+    return parse_config({
+        "node": {"port": 0, "spool_dir": str(tmp_path / "spool"), "idle_timeout_s": 20.0,
+                 "release_grace_s": 0.2, **node},
+        "protocols": [{
+            "name": "apt",
+            "match": {"attribute": "SeriesDescription", "regex": "^CEST APT phantom"},
+            "offset": {"tag": "(0029,xx10)", "private_creator": "CESTNODE SIM 1"},
+            "expected_frames": SLICES * len(OFFSETS),
+        }],
+    })
+
+
+def _dataset_part(raw: bytes) -> tuple[bytes, bytes]:
+    """(group 0002 bytes, data set bytes) of a PS3.10 file."""
+    assert raw[128:132] == b"DICM"
+    end = 132 + 12 + int.from_bytes(raw[140:144], "little")
+    return raw[132:end], raw[end:]
+
+
+@pytest.mark.peers
+@pytest.mark.parametrize("max_pdu", [262144, 4096])  # 4096: every data set in fragments
+@pytest.mark.parametrize("fast", [True, False])
+def test_storescu_instances_are_stored_byte_identical(tmp_path, fast, max_pdu):
+    done = threading.Event()
+    got: list = []
+    rng = np.random.default_rng(11)
+    signal = rng.random((SLICES, 16, 16, len(OFFSETS))).astype(np.float32)
+    files = write_series(series_from_arrays(signal, OFFSETS, scale=3000.0), tmp_path / "src")
+    random.Random(2).shuffle(files)
+    rx = Receiver(_cfg(tmp_path, max_pdu=max_pdu), lambda s: (got.append(s), done.set()),
+                  fast_path=fast).start()
+    try:
+        storescu(rx.port, files)
+        assert done.wait(10), "series not assembled"
+        assert rx.fast_stores == (len(files) if fast else 0)
+        (series,) = got
+        stored = {dcmread(p).SOPInstanceUID: p for p in rx.spool.instance_paths(series.key)}
+    finally:
+        rx.stop()
+    assert len(stored) == len(files)
+    for f in files:
+        sent = f.read_bytes()
+        uid = dcmread(f).SOPInstanceUID
+        meta, body = _dataset_part(stored[uid].read_bytes())
+        assert body == _dataset_part(sent)[1]  # the data set exactly as sent
+        fm = dcmread(stored[uid]).file_meta
+        assert (fm.MediaStorageSOPInstanceUID, fm.TransferSyntaxUID) == (uid, ExplicitVRLittleEndian)
+        assert fm.ImplementationClassUID == PYNETDICOM_IMPLEMENTATION_UID
+        assert len(meta) > 0
+    ref = np.rint(signal * 3000).astype(np.float32)  # the stored values (node.synth: rint)
+    np.testing.assert_array_equal(series.signal, ref[..., np.argsort(OFFSETS)])
+
+
+@pytest.mark.peers
+def test_fast_path_falls_back_for_other_messages_on_one_association(tmp_path):
+    dss = series_from_arrays(np.random.default_rng(4).random((SLICES, 8, 8, len(OFFSETS))),
+                             OFFSETS)
+    rx = Receiver(_cfg(tmp_path), lambda s: None, fast_path=True).start()
+    ae = AE(ae_title="SCANNER1")
+    ae.add_requested_context(MRImageStorage, [ImplicitVRLittleEndian])
+    ae.add_requested_context(Verification)
+    try:
+        assoc = ae.associate("127.0.0.1", rx.port, ae_title="CESTNODE")
+        assert assoc.is_established
+        try:
+            assert assoc.send_c_echo().Status == 0x0000  # the library's path
+            assert assoc.send_c_store(dss[0]).Status == 0x0000  # ours, Implicit VR
+            nopix = dss[1].copy()
+            del nopix.PixelData
+            st = assoc.send_c_store(nopix)
+            assert st.Status == STATUS_SOP_MISMATCH and "PixelData" in st.ErrorComment
+            assert assoc.send_c_echo().Status == 0x0000
+            assert assoc.send_c_store(dss[2]).Status == 0x0000
+        finally:
+            assoc.release()
+        assert assoc.is_released
+        assert rx.fast_stores == 3
+        (rec,) = rx.spool.all_series()
+        assert rec.n_instances == 2
+        back = dcmread(rx.spool.path_for(rec.key, dss[2].SOPInstanceUID))
+        assert back.file_meta.TransferSyntaxUID == ImplicitVRLittleEndian
+        assert back.PixelData == dss[2].PixelData
+    finally:
+        rx.stop()
+
+
+# --------------------------------------------------------------------------- library path
+@pytest.fixture
+def node(tmp_path):
+    """test_receive's fixture, with the fast path off (the library serves every C-STORE)."""
+    got = _rx._Collect()
+    rx = Receiver(_rx._cfg(tmp_path, allowed_calling_aets=["SCANNER1"]), got,
+                  fast_path=False).start()
+    try:
+        yield rx, got
+    finally:
+        assert rx.fast_stores == 0
+        rx.stop()
+
+
+_LIBRARY_RERUNS = [name for name in dir(_rx) if name.startswith("test_")
+                   and "node" in _rx.__dict__[name].__code__.co_varnames]
+for _name in _LIBRARY_RERUNS:  # collected here under this module's `node` fixture
+    globals()[f"{_name}__library_path"] = pytest.mark.peers(_rx.__dict__[_name])
