@@ -85,9 +85,10 @@ def test_maps_equal_the_single_machine_run(client, setup, local, chunk_voxels):
         for name in METHODS:
             assert np.array_equal(o.maps[name], local[o.key][name], equal_nan=True), name
             assert np.count_nonzero(np.isfinite(o.maps[name])) > 100
-    # every method's objects came back and were delivered here (three kinds per method)
+    # every method's objects came back and were delivered here (three kinds per method), and
+    # each series' reports (SR, summary page)
     assert sorted({(b.key, b.label) for b in delivered}) == sorted(
-        (s.key, m) for s in series for m in METHODS)
+        (s.key, m) for s in series for m in [*METHODS, "report"])
     workers = {t["worker"] for t in ts.data}
     assert len(workers) == 2, "the work reached both worker processes"
     if chunk_voxels:
