@@ -59,7 +59,7 @@ def scp_contexts() -> list[ScpContext]:
 
 def _sample_outputs() -> dict[str, list]:
     """One object of every output kind, built by the real builders from a tiny series."""
-    from node.derive import BUILDERS, DerivedRequest
+    from node.derive import BUILDERS, REPORT_BUILDERS, DerivedRequest, ReportRequest
     from node.synth import series_from_arrays
 
     offsets = np.array([-300.0, -3.5, 3.5])
@@ -72,6 +72,15 @@ def _sample_outputs() -> dict[str, list]:
     values = np.linspace(0, 1, 64, dtype=np.float32).reshape(1, 8, 8)
     out = {}
     for kind in OUTPUT_KINDS:
+        if kind in REPORT_BUILDERS:
+            mask = np.zeros((1, 8, 8), dtype=bool)
+            mask[:, 1:7, 1:7] = True
+            rep = ReportRequest(
+                references=[ref], maps={"mtr_asym": ("MTRasym", "%", values)}, mask=mask,
+                series_uid="2.25.1", series_number=1, m0=signal[..., 0],
+            )
+            out[kind] = REPORT_BUILDERS[kind](rep)
+            continue
         req = DerivedRequest(
             references=[ref], values=values, method="mtr_asym", title="MTRasym",
             unit_ucum="%", series_uid="2.25.1", series_number=1,
