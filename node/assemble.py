@@ -251,6 +251,50 @@ def read_offset_ppm(ds: Dataset, rule: OffsetRule, *, frame_index: int | None = 
     return value
 
 
+def _raw_numbers(ds: Dataset, tag: int) -> list[float] | None:
+    """The numbers of a not-yet-converted explicit-VR DS/IS element, read from its bytes.
+
+    A hot-path shortcut around pydicom's value conversion (which builds and validates a
+    DSfloat per value); None whenever the element is absent, already converted, implicit VR,
+    or any value is not a plain number: the caller then takes pydicom's path.
+    """
+    elem = ds._dict.get(tag)  # type: ignore[call-overload]
+    if type(elem) is not RawDataElement or elem.VR not in ("DS", "IS") or not elem.value:
+        return None
+    try:
+        out = [float(v) for v in elem.value.split(b"\\")]
+    except ValueError:
+        return None
+    return out if all(math.isfinite(v) for v in out) else None
+
+
+def _raw_us(ds: Dataset, tag: int) -> int | None:
+    """A not-yet-converted explicit-VR US element of one value, read from its two bytes."""
+    elem = ds._dict.get(tag)  # type: ignore[call-overload]
+    if (type(elem) is not RawDataElement or elem.VR != "US" or elem.length != 2
+            or not elem.is_little_endian):
+        return None
+    return int.from_bytes(elem.value or b"", "little")
+
+
+def _same_orientation(a: tuple[float, ...], b: tuple[float, ...]) -> bool:
+    """``np.allclose(a, b, atol=_ORIENTATION_TOLERANCE)`` (rtol 1e-5) for two short tuples."""
+    return len(a) == len(b) and all(
+        abs(x - y) <= _ORIENTATION_TOLERANCE + 1e-5 * abs(y) for x, y in zip(a, b, strict=True))
+
+
+def _normal_position(p: list[float], o: list[float]) -> tuple[float, tuple[float, ...]]:
+    nx = o[1] * o[5] - o[2] * o[4]
+    ny = o[2] * o[3] - o[0] * o[5]
+    nz = o[0] * o[4] - o[1] * o[3]
+    norm = math.sqrt(nx * nx + ny * ny + nz * nz)
+    if not all(math.isfinite(v) for v in p) or not norm > 0.5:
+        raise AssemblyError("ImageOrientationPatient: row and column cosines are not orthogonal "
+                            "unit vectors")
+    return (p[0] * (nx / norm) + p[1] * (ny / norm) + p[2] * (nz / norm),
+            tuple(float(v) for v in o))
+
+
 def slice_geometry(ds: Dataset, *, frame_index: int | None = None
                    ) -> tuple[float, tuple[float, ...]]:
     """Position along the slice normal (mm) and the direction cosines of one frame.
@@ -258,6 +302,10 @@ def slice_geometry(ds: Dataset, *, frame_index: int | None = None
     ``position = IPP . (r x c)`` with r, c the row and column direction cosines of
     ImageOrientationPatient (PS3.3 C.7.6.2.1.1; the normal is their cross product).
     """
+    if frame_index is None:  # single frame: straight from the bytes when they are plain
+        fast_p, fast_o = _raw_numbers(ds, 0x00200032), _raw_numbers(ds, 0x00200037)
+        if fast_p is not None and fast_o is not None and len(fast_p) == 3 and len(fast_o) == 6:
+            return _normal_position(fast_p, fast_o)
     cands = _candidates(ds, frame_index)
     ipp = _find(cands, keyword="ImagePositionPatient")
     iop = _find(cands, keyword="ImageOrientationPatient")
@@ -266,21 +314,18 @@ def slice_geometry(ds: Dataset, *, frame_index: int | None = None
     if iop is None or len(iop) != 6:
         raise AssemblyError("ImageOrientationPatient: missing or not 6 values")
     try:
-        p = np.array([float(v) for v in ipp])
-        o = np.array([float(v) for v in iop])
+        p = [float(v) for v in ipp]
+        o = [float(v) for v in iop]
     except (TypeError, ValueError):
         raise AssemblyError("ImagePositionPatient/ImageOrientationPatient: not numbers") from None
-    normal = np.cross(o[:3], o[3:])
-    norm = float(np.linalg.norm(normal))
-    if not np.isfinite(p).all() or not norm > 0.5:
-        raise AssemblyError("ImageOrientationPatient: row and column cosines are not orthogonal "
-                            "unit vectors")
-    return float(p @ (normal / norm)), tuple(float(v) for v in o)
+    return _normal_position(p, o)
 
 
 def _header_only(ds: Dataset) -> Dataset:
     """A shallow copy of ``ds`` without Pixel Data (elements shared, not re-parsed)."""
-    hdr = Dataset({t: e for t, e in ds._dict.items() if t != _PIXEL_DATA})
+    elems = dict(ds._dict)
+    elems.pop(_PIXEL_DATA, None)
+    hdr = Dataset(elems)
     if hasattr(ds, "file_meta"):
         hdr.file_meta = ds.file_meta
     implicit, little = ds.original_encoding
@@ -298,16 +343,19 @@ def _decode_pixels(ds: Dataset, *, modality: bool = True) -> np.ndarray:
     Intercept (PS3.3 C.11.1) are applied when present at the top level; per-frame ones by the
     caller.
     """
-    rows, cols = int(ds.Rows), int(ds.Columns)
-    n_frames = int(ds.get("NumberOfFrames", 1) or 1)
+    rows = _raw_us(ds, 0x00280010) or int(ds.Rows)
+    cols = _raw_us(ds, 0x00280011) or int(ds.Columns)
+    n_frames = int(ds.get("NumberOfFrames", 1) or 1) if 0x00280008 in ds._dict else 1
     arr: np.ndarray | None = None
     ts = getattr(getattr(ds, "file_meta", None), "TransferSyntaxUID", None)
     raw = ds._dict.get(_PIXEL_DATA)
     if (ts is not None and not ts.is_compressed and ts.is_little_endian
-            and int(ds.get("SamplesPerPixel", 1)) == 1 and raw is not None):
-        bits = int(ds.BitsAllocated)
-        stored = int(ds.get("BitsStored", bits))
-        signed = int(ds.get("PixelRepresentation", 0)) == 1
+            and (_raw_us(ds, 0x00280002) or int(ds.get("SamplesPerPixel", 1))) == 1
+            and raw is not None):
+        bits = _raw_us(ds, 0x00280100) or int(ds.BitsAllocated)
+        stored = _raw_us(ds, 0x00280101) or int(ds.get("BitsStored", bits))
+        rep = _raw_us(ds, 0x00280103)
+        signed = (rep if rep is not None else int(ds.get("PixelRepresentation", 0))) == 1
         data = raw.value if isinstance(raw, DataElement | RawDataElement) else None
         if bits in (8, 16, 32) and stored == bits and isinstance(data, bytes | bytearray):
             dtype = np.dtype(f"<{'i' if signed else 'u'}{bits // 8}")
@@ -326,8 +374,11 @@ def _decode_pixels(ds: Dataset, *, modality: bool = True) -> np.ndarray:
     out = arr.reshape(n_frames, rows, cols).astype(np.float32)
     if not modality:
         return out
-    slope = ds.get("RescaleSlope")
-    intercept = ds.get("RescaleIntercept")
+    fast_s, fast_i = _raw_numbers(ds, 0x00281053), _raw_numbers(ds, 0x00281052)
+    slope: Any = (fast_s[0] if fast_s is not None and len(fast_s) == 1
+                  else ds.get("RescaleSlope"))
+    intercept: Any = (fast_i[0] if fast_i is not None and len(fast_i) == 1
+                      else ds.get("RescaleIntercept"))
     if slope is not None and float(slope) != 1.0:
         out *= np.float32(float(slope))
     if intercept is not None and float(intercept) != 0.0:
@@ -557,7 +608,7 @@ class Assembler:
         for i in range(pixels.shape[0]):
             fi = i if multi else None
             position, orient = slice_geometry(ds, frame_index=fi)
-            if orientation and not np.allclose(orient, orientation, atol=_ORIENTATION_TOLERANCE):
+            if orientation and not _same_orientation(orient, orientation):
                 raise AssemblyError("ImageOrientationPatient: differs between frames")
             orientation = orient
             if rule is not None:
@@ -641,7 +692,7 @@ class Assembler:
             if (prep.rows, prep.cols) != (s.rows, s.cols):
                 raise AssemblyError(f"Rows/Columns: {prep.rows} x {prep.cols} differs from the "
                                     f"series' {s.rows} x {s.cols}")
-            if not np.allclose(prep.orientation, s.orientation, atol=_ORIENTATION_TOLERANCE):
+            if not _same_orientation(prep.orientation, s.orientation):
                 raise AssemblyError("ImageOrientationPatient: differs from the series'")
             if prep.sop_instance_uid in s.sops:
                 log.info("series %s: duplicate instance ignored (first kept)", s.key)

@@ -144,6 +144,7 @@ _ENCODED_VR = frozenset(
     v.encode() for v in ("AE", "AS", "AT", "CS", "DA", "DS", "DT", "FL", "FD", "IS", "LO", "LT",
                          "OB", "OD", "OF", "OL", "OV", "OW", "PN", "SH", "SL", "SQ", "SS", "ST",
                          "SV", "TM", "UC", "UI", "UL", "UN", "UR", "US", "UT", "UV"))
+_VR_TEXT = {v: v.decode() for v in _ENCODED_VR}
 _LONG_VR = frozenset(v.encode() for v in ("OB", "OD", "OF", "OL", "OV", "OW", "SQ", "UC", "UN",
                                           "UR", "UT", "SV", "UV"))
 _EXPLICIT_HEAD = struct.Struct("<HH2sH")
@@ -177,7 +178,7 @@ def _scan_explicit_le(data: bytes) -> dict[BaseTag, RawDataElement] | None:
         tag = group << 16 | elem
         if group == 0xFFFE:
             return None
-        vr = vr_b.decode()
+        vr = _VR_TEXT[vr_b]
         value = data[pos:pos + length] if length else empty_value_for_VR(vr, raw=True)
         out[BaseTag(tag)] = RawDataElement(BaseTag(tag), vr, length, value, pos, False, True)
         pos += length
