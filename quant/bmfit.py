@@ -52,6 +52,7 @@ from quant.lorentz import (
     FLAG_HIGH_RESIDUAL,
     FLAG_INVALID_INPUT,
     FLAG_NOT_CONVERGED,
+    _gate,
 )
 from quant.lsq import least_squares_batch
 
@@ -184,7 +185,8 @@ def aptr_star(
     init: str = "table",
     neighbourhood: int = 3,
     max_iter: int = 100,
-    rms_limit: float = 0.02,
+    rms_limit: float | None = None,
+    noise_sigma: float | None = None,
 ) -> AptrStarResult:
     """Fit the fast-path Bloch-McConnell model and return APTR* (see the module docstring).
 
@@ -203,8 +205,12 @@ def aptr_star(
         Water T1 map in s; where given (finite), ``R1w = 1/T1`` is held fixed, else fitted.
     init : {'table', 'neighbourhood'}
         As in :func:`quant.lorentz.multi_lorentzian`.
-    max_iter, rms_limit
-        Solver step limit; RMS above which ``FLAG_HIGH_RESIDUAL`` is set.
+    max_iter : int
+        Solver step limit.
+    rms_limit, noise_sigma : float, optional
+        The residual gate as in :func:`quant.lorentz.multi_lorentzian`: by default the
+        chi-square limit of :func:`quant.lorentz.residual_limit` at ``noise_sigma`` or at the
+        noise estimated from all voxels' residuals.
 
     Returns
     -------
@@ -298,8 +304,9 @@ def aptr_star(
     flags[res.status < 0] |= FLAG_INVALID_INPUT
     flags[res.status == 0] |= FLAG_NOT_CONVERGED
     flags[res.at_bound[:, 3]] |= FLAG_AT_BOUND
+    limit = _gate(res.residual_rms, offs.size, free.size, rms_limit, noise_sigma)
     with np.errstate(invalid="ignore"):
-        flags[res.residual_rms > rms_limit] |= FLAG_HIGH_RESIDUAL
+        flags[res.residual_rms > limit] |= FLAG_HIGH_RESIDUAL
 
     def shape(a, dt=out_dtype):
         return np.asarray(a).reshape(lead + np.shape(a)[1:]).astype(dt)

@@ -22,7 +22,9 @@ Quality flags (bit mask, ``result.flags``), so users can mask unreliable voxels:
 * ``FLAG_NOT_CONVERGED`` (2): the solver hit its iteration limit.
 * ``FLAG_AT_BOUND`` (4): a parameter of the reported map rests on a bound (the value is kept,
   never clipped further, but it is a constrained estimate, not a free optimum).
-* ``FLAG_HIGH_RESIDUAL`` (8): the residual RMS exceeds ``rms_limit``.
+* ``FLAG_HIGH_RESIDUAL`` (8): the residual RMS exceeds the limit of :func:`residual_limit`
+  (scaled with the noise: given as ``noise_sigma`` or estimated from the residuals of all
+  voxels), or an explicit ``rms_limit``.
 """
 
 from __future__ import annotations
@@ -30,7 +32,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import ndimage
+from scipy import ndimage, stats
 
 from quant.lsq import least_squares_batch
 
@@ -47,6 +49,7 @@ __all__ = [
     "FLAG_NOT_CONVERGED",
     "FLAG_AT_BOUND",
     "FLAG_HIGH_RESIDUAL",
+    "residual_limit",
 ]
 
 FLAG_INVALID_INPUT = 1
@@ -128,35 +131,61 @@ def _param_layout(pools):
     return names, np.array(start), np.array(lo), np.array(hi)
 
 
+#: Voxels per pass of the model kernel: its (chunk, K, N) temporaries stay in the CPU cache
+#: (measured in tests/bench/bench_fits.py; 5 pools x 61 offsets x 128 voxels is 0.3 MB each).
+_CHUNK = 128
+
+
 def _model_and_jac(params, x, with_jac):
     """Model ``c - sum L_i`` for params (n, 1 + 3K); pool 0 is water, positions of the others relative.
 
     Returns the model (n, N) and, if asked, the Jacobian (n, N, P) as a transposed view of a
-    contiguous (n, P, N) array (the layout the normal equations want).
+    contiguous (n, P, N) array (the layout the normal equations want). Evaluated in chunks of
+    :data:`_CHUNK` voxels with shared subexpressions (``u = dw - d``, ``1 / (h^2 + u^2)``).
     """
+    params = np.asarray(params, dtype=np.float64)
     n, n_par = params.shape
+    model = np.empty((n, x.size))
+    jac_t = np.empty((n, n_par, x.size)) if with_jac else None
+    for s in range(0, n, _CHUNK):
+        e = min(s + _CHUNK, n)
+        _kernel(params[s:e], x, model[s:e], None if jac_t is None else jac_t[s:e])
+    return model, (None if jac_t is None else np.swapaxes(jac_t, 1, 2))
+
+
+def _kernel(params, x, model, jac_t):
+    """Fill ``model`` (n, N) and, if given, ``jac_t`` (n, P, N) for one chunk of voxels.
+
+    With ``h = w/2``, ``u = dw - d``, ``q = 1 / (h^2 + u^2)``: ``L = A h^2 q``,
+    ``dL/dA = h^2 q``, ``dL/dw = 2 L u^2 q / w``, ``dL/dd = 2 L u q``; the model is
+    ``c - sum L`` (so its derivatives are the negatives), and the water position moves every
+    pool (its column is the sum of the position columns).
+    """
     c = params[:, 0:1]
-    a = params[:, 1::3][:, :, None]  # (n, K, 1)
-    w = params[:, 2::3][:, :, None]
+    a = params[:, 1::3]
+    w = params[:, 2::3]
     d = params[:, 3::3].copy()
     d[:, 1:] += d[:, :1]  # absolute positions
-    u = x[None, None, :] - d[:, :, None]  # (n, K, N)
-    h2 = (w / 2) ** 2
-    u2 = u * u
-    inv = 1.0 / (h2 + u2)
-    lor = (a * h2) * inv
-    model = c - lor.sum(axis=1)
-    if not with_jac:
-        return model, None
-    jac_t = np.empty((n, n_par, x.size))
+    h2 = 0.25 * w * w  # (n, K)
+    u = np.subtract(x[None, None, :], d[:, :, None])  # (n, K, N)
+    q = np.multiply(u, u)
+    if jac_t is not None:
+        u2 = q.copy()
+    q += h2[:, :, None]
+    np.reciprocal(q, out=q)
+    lor = q * (a * h2)[:, :, None]
+    np.subtract(c, lor.sum(axis=1), out=model)
+    if jac_t is None:
+        return
     jac_t[:, 0, :] = 1.0
-    t = lor * inv
-    jac_t[:, 1::3, :] = -(h2 * inv)  # d/dA
-    jac_t[:, 2::3, :] = (-2.0 / w) * t * u2  # d/dw
-    d_pos = -2.0 * t * u  # d/d(absolute position of pool i)
-    jac_t[:, 3::3, :] = d_pos
-    jac_t[:, 3, :] = d_pos.sum(axis=1)  # the water position moves every pool
-    return model, np.swapaxes(jac_t, 1, 2)
+    np.multiply(q, -h2[:, :, None], out=jac_t[:, 1::3, :])  # d model / dA
+    t = lor * q
+    t *= -2.0  # -2 L q
+    u2 *= t
+    u2 /= w[:, :, None]
+    jac_t[:, 2::3, :] = u2  # d model / dw = -2 L u^2 q / w
+    np.multiply(t, u, out=jac_t[:, 3::3, :])  # d model / d(absolute position) = -2 L u q
+    jac_t[:, 3, :] = jac_t[:, 3::3, :].sum(axis=1)  # the water position moves every pool
 
 
 def z_model(offsets_ppm, params, pools=POOLS_5):
@@ -243,6 +272,77 @@ def _start_values(zf, offs, start, lo, hi):
     return np.clip(p0, lo, hi)
 
 
+#: Upper-tail probability of the residual gate (one false flag per thousand good voxels).
+RESIDUAL_P = 1e-3
+
+#: Least noise the estimate of :func:`residual_limit` assumes (Z units): below the quantisation
+#: step 1/4096 of 12-bit magnitude images, so noise-free test spectra, whose residuals are
+#: rounding only, are not gated on rounding (our choice).
+SIGMA_FLOOR = 1e-4
+
+
+def residual_limit(rms, n_res, n_par, *, noise_sigma=None, p_false=RESIDUAL_P):
+    """RMS above which a fit's residual is more than noise: the chi-square gate of a fit.
+
+    For a correct model with Gaussian noise of standard deviation ``sigma`` on ``M`` fitted
+    values and ``P`` free parameters, ``M * rms^2 / sigma^2`` follows a chi-square law with
+    ``M - P`` degrees of freedom (the goodness-of-fit test of a least-squares fit: Press et al.,
+    Numerical Recipes, 3rd ed. 2007, section 15.1; from memory). The limit is its upper
+    ``p_false`` quantile::
+
+        rms_limit = sigma * sqrt(chi2.ppf(1 - p_false, M - P) / M)
+
+    ``sigma`` is ``noise_sigma`` when given; otherwise it is estimated from the residuals of
+    all fitted voxels, ``sigma^2 = median(M rms^2) / chi2.median(M - P)`` (a median, so badly
+    fitting voxels do not inflate it: common practice), at least :data:`SIGMA_FLOOR`. The
+    estimate needs many voxels that
+    share one noise level; for a handful of voxels or images of mixed SNR pass ``noise_sigma``
+    (e.g. the standard deviation of repeated M0 scans divided by M0).
+
+    Parameters
+    ----------
+    rms : ndarray
+        Residual RMS per voxel (NaN where not fitted).
+    n_res, n_par : int
+        Fitted values per voxel and free parameters.
+    noise_sigma : float, optional
+        Noise standard deviation in Z units.
+    p_false : float
+        Share of good fits that the gate flags.
+
+    Returns
+    -------
+    float
+        The limit (NaN when no voxel was fitted and no ``noise_sigma`` was given).
+    """
+    dof = n_res - n_par
+    if dof < 1:
+        raise ValueError(f"no degrees of freedom left: {n_res} values for {n_par} parameters")
+    if not 0.0 < p_false < 1.0:
+        raise ValueError(f"p_false must lie in (0, 1), got {p_false}")
+    if noise_sigma is None:
+        r = np.asarray(rms, dtype=np.float64)
+        r = r[np.isfinite(r)]
+        if r.size == 0:
+            return float("nan")
+        sigma = float(np.sqrt(np.median(n_res * r * r) / stats.chi2.median(dof)))
+        sigma = max(sigma, SIGMA_FLOOR)
+    else:
+        sigma = float(noise_sigma)
+        if not (np.isfinite(sigma) and sigma > 0):
+            raise ValueError(f"noise_sigma must be positive and finite, got {noise_sigma!r}")
+    return sigma * float(np.sqrt(stats.chi2.isf(p_false, dof) / n_res))
+
+
+def _gate(rms, n_res, n_par, rms_limit, noise_sigma):
+    """The residual limit: ``rms_limit`` if given, else :func:`residual_limit`."""
+    if rms_limit is not None:
+        if not (np.isfinite(rms_limit) and rms_limit > 0):
+            raise ValueError(f"rms_limit must be positive and finite, got {rms_limit!r}")
+        return float(rms_limit)
+    return residual_limit(rms, n_res, n_par, noise_sigma=noise_sigma)
+
+
 def _flags(status, at_bound_map, rms, rms_limit):
     flags = np.zeros(status.shape, dtype=np.uint8)
     flags[status < 0] |= FLAG_INVALID_INPUT
@@ -275,17 +375,25 @@ def _smooth_spectra(zf, lead, size):
 #: tests/bench/bench_fits.py) while a third fewer steps are needed.
 FIT_TOL = 1e-6
 
+#: Voxels per solver block (the solver's per-iteration overhead is paid per block; the model
+#: kernel works in cache-sized chunks of its own).
+BLOCK = 4096
+
+#: Fraction of the way to a bound that a bound-crossing step moves a parameter (see
+#: :func:`quant.lsq.least_squares_batch`); 1 sends it onto the bound. Chosen from the residuals
+#: on the benchmark's SNR-60 spectra (tests/bench/bench_fits.py): fewer fits end on a bound in a
+#: worse local minimum.
+BOUND_APPROACH = 0.5
+
 
 def _run_fit(zf, offs, weights, start, lo, hi, lead, init, neighbourhood, max_iter, p0=None):
-    def fun(p, i):
-        m, _ = _model_and_jac(p, offs, False)
-        return (m - zf[i]) * weights
-
     unweighted = bool(np.all(weights == 1.0))
 
-    def jac(p, i):
-        _, j = _model_and_jac(p, offs, True)
-        return j if unweighted else j * weights[None, :, None]
+    def fun(p, i):  # residuals and Jacobian together: they share the model's subexpressions
+        m, j = _model_and_jac(p, offs, True)
+        if unweighted:
+            return m - zf[i], j
+        return (m - zf[i]) * weights, j * weights[None, :, None]
 
     if p0 is None:
         if init == "neighbourhood":
@@ -299,7 +407,8 @@ def _run_fit(zf, offs, weights, start, lo, hi, lead, init, neighbourhood, max_it
         else:
             raise ValueError(f"init must be 'table' or 'neighbourhood', got {init!r}")
     return least_squares_batch(
-        fun, p0, jac=jac, lower=lo, upper=hi, max_iter=max_iter, ftol=FIT_TOL, xtol=FIT_TOL
+        fun, p0, jac=True, lower=lo, upper=hi, max_iter=max_iter, ftol=FIT_TOL, xtol=FIT_TOL,
+        block_size=BLOCK, bound_approach=BOUND_APPROACH,
     )
 
 
@@ -328,6 +437,8 @@ class MultiLorentzianResult:
     at_bound : ndarray (..., 1 + 3 K) bool
     flags : ndarray uint8
         Quality bit mask (see the module docstring); 0 is a clean fit.
+    rms_limit : float
+        The residual limit applied for ``FLAG_HIGH_RESIDUAL``.
     """
 
     map: np.ndarray
@@ -343,6 +454,7 @@ class MultiLorentzianResult:
     flags: np.ndarray
     param_names: tuple[str, ...] = field(default=())
     pools: tuple[Pool, ...] = field(default=())
+    rms_limit: float = float("nan")
 
 
 def multi_lorentzian(
@@ -354,7 +466,8 @@ def multi_lorentzian(
     init: str = "table",
     neighbourhood: int = 3,
     max_iter: int = 100,
-    rms_limit: float = 0.02,
+    rms_limit: float | None = None,
+    noise_sigma: float | None = None,
 ) -> MultiLorentzianResult:
     """Fit ``Z(dw) = c - sum_i L_i(dw)`` with water, amide, amine, NOE and MT pools.
 
@@ -379,8 +492,12 @@ def multi_lorentzian(
         for noisy voxels; needs two spatial axes). Each voxel's result is still its own fit.
     max_iter : int
         Levenberg-Marquardt step limit per voxel.
-    rms_limit : float
-        Residual RMS above which a voxel gets ``FLAG_HIGH_RESIDUAL``.
+    rms_limit : float, optional
+        Residual RMS above which a voxel gets ``FLAG_HIGH_RESIDUAL``. By default the limit
+        scales with the noise (:func:`residual_limit`: the chi-square gate at ``noise_sigma``,
+        or at the noise estimated from the residuals of all voxels); it is ``result.rms_limit``.
+    noise_sigma : float, optional
+        Noise standard deviation in Z units, for the default residual gate.
 
     Returns
     -------
@@ -414,7 +531,8 @@ def multi_lorentzian(
     wid = {p.name: params[:, 2 + 3 * k] for k, p in enumerate(pools)}
     pos = {p.name: params[:, 3 + 3 * k] + (params[:, 3] if k else 0.0) for k, p in enumerate(pools)}
     apt_bound = res.at_bound[:, 1 + 3 * k_apt]
-    flags = _flags(res.status, apt_bound, res.residual_rms, rms_limit)
+    limit = _gate(res.residual_rms, offs.size, len(names), rms_limit, noise_sigma)
+    flags = _flags(res.status, apt_bound, res.residual_rms, limit)
 
     def shape(a, dt=out_dtype):
         return np.asarray(a).reshape(lead + np.shape(a)[1:]).astype(dt)
@@ -433,6 +551,7 @@ def multi_lorentzian(
         flags=shape(flags, np.uint8),
         param_names=tuple(names),
         pools=tuple(pools),
+        rms_limit=limit,
     )
 
 
@@ -457,6 +576,8 @@ class LdaResult:
         Offsets the reference was fitted on.
     rms, converged, iterations, flags : ndarray
         Fit quality as in :class:`MultiLorentzianResult`.
+    rms_limit : float
+        The residual limit applied for ``FLAG_HIGH_RESIDUAL``.
     """
 
     map: np.ndarray
@@ -470,6 +591,7 @@ class LdaResult:
     converged: np.ndarray
     iterations: np.ndarray
     flags: np.ndarray
+    rms_limit: float = float("nan")
 
 
 def lda(
@@ -482,7 +604,8 @@ def lda(
     init: str = "table",
     neighbourhood: int = 3,
     max_iter: int = 100,
-    rms_limit: float = 0.02,
+    rms_limit: float | None = None,
+    noise_sigma: float | None = None,
 ) -> LdaResult:
     """Lorentzian difference analysis: ``LD(at) = Z_ref(at) - Z(at)``.
 
@@ -504,8 +627,8 @@ def lda(
         Where LD is read (3.5 ppm, the amide).
     mt : bool
         Include the broad MT Lorentzian in the reference (needs offsets beyond the band).
-    init, neighbourhood, max_iter, rms_limit
-        As in :func:`multi_lorentzian`.
+    init, neighbourhood, max_iter, rms_limit, noise_sigma
+        As in :func:`multi_lorentzian` (the residual gate counts the fitted offsets only).
 
     Returns
     -------
@@ -545,7 +668,8 @@ def lda(
     # residual RMS over the fitted offsets only
     rms = res.residual_rms * np.sqrt(offs.size / n_fit)
     # the reference is constrained where a water parameter rests on a bound
-    flags = _flags(res.status, res.at_bound[:, 1:4].any(axis=1), rms, rms_limit)
+    limit = _gate(rms, n_fit, len(names), rms_limit, noise_sigma)
+    flags = _flags(res.status, res.at_bound[:, 1:4].any(axis=1), rms, limit)
 
     def shape(a, dt=out_dtype):
         return np.asarray(a).reshape(lead + np.shape(a)[1:]).astype(dt)
@@ -562,6 +686,7 @@ def lda(
         converged=shape(res.converged, bool),
         iterations=shape(res.iterations, np.int64),
         flags=shape(flags, np.uint8),
+        rms_limit=limit,
     )
 
 

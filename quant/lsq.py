@@ -144,6 +144,7 @@ def least_squares_batch(
     gtol: float = 1e-8,
     lambda0: float = 1e-3,
     block_size: int = 1024,
+    bound_approach: float = 1.0,
 ) -> LsqResult:
     """Fit ``V`` independent least-squares problems at once by Levenberg-Marquardt.
 
@@ -154,9 +155,13 @@ def least_squares_batch(
         ``index`` (``(n,)`` integers into ``0..V-1``); returns ``(n, M)``.
     p0 : array_like (V, P)
         Start values; projected onto the box first.
-    jac : callable, optional
-        ``jac(params, index) -> (n, M, P)``, the Jacobian of the residuals. Forward finite
-        differences (:func:`finite_difference_jacobian`) when omitted.
+    jac : callable or True, optional
+        ``jac(params, index) -> (n, M, P)``, the Jacobian of the residuals, evaluated after
+        each accepted step. ``True``: ``fun`` returns ``(residuals, jacobian)`` at every point
+        it is called for (the convention of ``scipy.optimize.minimize(jac=True)``), so a model
+        whose Jacobian shares subexpressions with its value is evaluated once per step; the
+        Jacobian of a rejected trial point is discarded. Forward finite differences
+        (:func:`finite_difference_jacobian`) when omitted.
     lower, upper : array_like (P,) or float, optional
         Box bounds (``-inf`` / ``inf`` by default).
     max_iter : int
@@ -167,6 +172,13 @@ def least_squares_batch(
         Initial damping, relative to the scaled diagonal.
     block_size : int
         Voxels solved together (bounds the memory of the ``(n, M, P)`` Jacobian).
+    bound_approach : float in (0, 1]
+        A step component that would cross a bound moves that parameter this fraction of its
+        distance to the bound (1: onto the bound), unless it is already within 1e-3 of the
+        bound range from it, when it lands on the bound. Values below 1 keep poorly determined
+        parameters from being pushed onto a bound by an early, long Gauss-Newton step (the
+        step-back of trust-region-reflective methods, Branch, Coleman & Li, SIAM J Sci Comput
+        1999, 21:1, serves the same end; from memory).
 
     Returns
     -------
@@ -189,6 +201,8 @@ def least_squares_batch(
         raise ValueError(f"max_iter must be at least 1, got {max_iter}")
     if block_size < 1:
         raise ValueError(f"block_size must be at least 1, got {block_size}")
+    if not 0.0 < bound_approach <= 1.0:
+        raise ValueError(f"bound_approach must lie in (0, 1], got {bound_approach}")
     lo, hi = _check_bounds(p0, lower, upper)
     n_vox, n_par = p0.shape
     params = np.full((n_vox, n_par), np.nan)
@@ -198,7 +212,9 @@ def least_squares_batch(
     status = np.full(n_vox, STATUS_INVALID, dtype=np.int64)
     for start in range(0, n_vox, block_size):  # blocks of voxels, to bound memory
         idx = np.arange(start, min(start + block_size, n_vox))
-        out = _solve_block(fun, jac, p0[idx], idx, lo, hi, max_iter, ftol, xtol, gtol, lambda0)
+        out = _solve_block(
+            fun, jac, p0[idx], idx, lo, hi, max_iter, ftol, xtol, gtol, lambda0, bound_approach
+        )
         params[idx], cost[idx], rms[idx], iters[idx], status[idx] = out
     finite = np.isfinite(params)
     span = np.where(np.isfinite(hi - lo), hi - lo, 1.0)
@@ -215,13 +231,40 @@ def least_squares_batch(
     )
 
 
-def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda0):
+def _evaluate(fun, jac, p, index, lo, hi, n_res, n_par, eager):
+    """Residuals (and, when ``eager``, the Jacobian) at ``p`` for the voxels ``index``."""
+    if eager:
+        out = fun(p, index)
+        if not (isinstance(out, tuple) and len(out) == 2):
+            raise ValueError("with jac=True, fun must return a tuple (residuals, jacobian)")
+        r, j = out
+    else:
+        r, j = fun(p, index), None
+    r = np.asarray(r, dtype=np.float64)
+    if r.ndim != 2 or r.shape[0] != p.shape[0] or (n_res is not None and r.shape[1] != n_res):
+        raise ValueError(f"fun must return residuals shaped (n, M), got shape {r.shape}")
+    if j is not None:
+        _check_jac(j, p.shape[0], r.shape[1], n_par)
+    return r, j
+
+
+def _check_jac(j, n, n_res, n_par):
+    if j.shape != (n, n_res, n_par):
+        raise ValueError(f"jac must return shape (n, M, P) = {(n, n_res, n_par)}, got {j.shape}")
+
+
+def _normal_equations(j, r):
+    """``J^T J`` (n, P, P) and ``J^T r`` (n, P) for a block of Jacobians (n, M, P)."""
+    jt = np.swapaxes(j, 1, 2)
+    return jt @ j, (jt @ r[:, :, None])[:, :, 0]
+
+
+def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda0, approach):
     n, n_par = p0.shape
+    eager = jac is True
     p = np.clip(p0, lo, hi)
     p[~np.isfinite(p0)] = np.nan
-    r = np.asarray(fun(p, index), dtype=np.float64)
-    if r.ndim != 2 or r.shape[0] != n:
-        raise ValueError(f"fun must return residuals shaped (n, M), got shape {r.shape}")
+    r, j0 = _evaluate(fun, jac, p, index, lo, hi, None, n_par, eager)
     n_res = r.shape[1]
     valid = np.all(np.isfinite(r), axis=1) & np.all(np.isfinite(p), axis=1)
     cost = 0.5 * np.einsum("vm,vm->v", r, r)
@@ -231,15 +274,23 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
     nu = np.full(n, 2.0)
     dscale = np.zeros((n, n_par))
     eye = np.eye(n_par)
+    span = np.where(np.isfinite(hi - lo), hi - lo, 1.0)
+    near_tol = 1e-3 * span  # closer than this to a bound, a crossing step lands on the bound
 
     act = np.flatnonzero(valid)  # active voxels (positions in this block)
-    need_jac = np.ones(n, dtype=bool)
     jtj = np.zeros((n, n_par, n_par))
     grad = np.zeros((n, n_par))
+    need_jac = np.zeros(n, dtype=bool)
+    if eager:
+        if act.size:
+            jtj[act], grad[act] = _normal_equations(np.asarray(j0, np.float64)[act], r[act])
+    else:
+        need_jac[act] = True
+    del j0
     for _ in range(max_iter):
         if act.size == 0:
             break
-        # --- Jacobian and normal equations where the point moved (after an accepted step)
+        # --- Jacobian and normal equations where the point moved (lazy mode only)
         upd = act[need_jac[act]]
         if upd.size:
             if jac is None:
@@ -248,49 +299,38 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
                 )
             else:
                 j_upd = np.asarray(jac(p[upd], index[upd]), dtype=np.float64)
-            if j_upd.shape != (upd.size, n_res, n_par):
-                raise ValueError(
-                    f"jac must return shape (n, M, P) = {(upd.size, n_res, n_par)}, "
-                    f"got {j_upd.shape}"
-                )
-            jt = np.swapaxes(j_upd, 1, 2)
-            jtj[upd] = jt @ j_upd
-            grad[upd] = (jt @ r[upd][:, :, None])[:, :, 0]
-            dscale[upd] = np.maximum(dscale[upd], np.einsum("vpp->vp", jtj[upd]))
+            _check_jac(j_upd, upd.size, n_res, n_par)
+            jtj[upd], grad[upd] = _normal_equations(j_upd, r[upd])
             need_jac[upd] = False
+        dscale[act] = np.maximum(dscale[act], np.einsum("vpp->vp", jtj[act]))
 
         pa, ga = p[act], grad[act]
         # active set: on a bound with the gradient pointing out of the box
         frozen = ((pa <= lo) & (ga > 0)) | ((pa >= hi) & (ga < 0))
         g_free = np.where(frozen, 0.0, ga)
-        gnorm = np.max(np.abs(g_free), axis=1)
-        done_g = gnorm < gtol
+        done_g = np.max(np.abs(g_free), axis=1) < gtol
         if np.any(done_g):
             status[act[done_g]] = STATUS_GTOL
-            act, pa, ga, frozen, g_free = (
-                act[~done_g], pa[~done_g], ga[~done_g], frozen[~done_g], g_free[~done_g]
-            )
+            keep_g = ~done_g
+            act, pa, ga, frozen, g_free = act[keep_g], pa[keep_g], ga[keep_g], frozen[keep_g], g_free[keep_g]
             if act.size == 0:
                 break
 
         n_act = act.size
-        d = np.maximum(dscale[act], 1e-12 * np.maximum(dscale[act].max(axis=1, keepdims=True), 1.0))
-        a = jtj[act]  # a copy (fancy indexing)
-        diag = a.reshape(n_act, -1)[:, :: n_par + 1]  # a view of the diagonals
-        diag += lam[act, None] * d
-        a_damped = a.copy()
-        fz = np.flatnonzero(frozen.any(axis=1))
-        if fz.size:  # frozen parameters: identity rows and columns, zero step
-            keep = (~frozen[fz]).astype(np.float64)
-            a[fz] *= keep[:, :, None] * keep[:, None, :]
-            a[fz] += frozen[fz][:, :, None] * eye
-        try:
-            step = np.linalg.solve(a, -g_free[:, :, None])[:, :, 0]
-        except np.linalg.LinAlgError:
-            step = _solve_safe(a, -g_free)
-        step[~np.isfinite(step)] = 0.0
-        # a step that crosses a bound: hold those parameters on the bound they cross and
-        # re-solve for the others (a few passes), instead of clipping a correlated step
+        ds = dscale[act]
+        d = np.maximum(ds, 1e-12 * np.maximum(ds.max(axis=1, keepdims=True), 1.0))
+        jtj_a = jtj[act]  # a copy (fancy indexing), kept for the predicted reduction
+        a_damped = jtj_a.copy()
+        a_damped.reshape(n_act, -1)[:, :: n_par + 1] += lam[act, None] * d
+        a = a_damped
+        if frozen.any():  # frozen parameters: identity rows and columns, zero step
+            keep = (~frozen).astype(np.float64)
+            a = a_damped * (keep[:, :, None] * keep[:, None, :])
+            a.reshape(n_act, -1)[:, :: n_par + 1] += frozen
+        step = _solve(a, -g_free)
+        # a step that crosses a bound: hold those parameters (on the bound, or ``approach`` of
+        # the way there) and re-solve for the others (a few passes), instead of clipping a
+        # correlated step
         fixed = frozen.copy()
         for _pass in range(3):
             trial = pa + step
@@ -298,7 +338,10 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
             cz = np.flatnonzero(crossing.any(axis=1))
             if cz.size == 0:
                 break
-            dc = np.where(crossing[cz], np.clip(trial[cz], lo, hi) - pa[cz], 0.0)
+            to_bound = np.clip(trial[cz], lo, hi) - pa[cz]
+            if approach < 1.0:
+                to_bound = np.where(np.abs(to_bound) > near_tol, approach * to_bound, to_bound)
+            dc = np.where(crossing[cz], to_bound, 0.0)
             held = np.where(fixed[cz], step[cz], 0.0) + dc  # steps of all held parameters
             a_c = a_damped[cz]
             rhs = -g_free[cz] - (a_c @ held[:, :, None])[:, :, 0]
@@ -307,18 +350,19 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
             a_c *= keep[:, :, None] * keep[:, None, :]
             a_c += fixed[cz][:, :, None] * eye
             rhs = np.where(fixed[cz], held, rhs)
-            try:
-                step[cz] = np.linalg.solve(a_c, rhs[:, :, None])[:, :, 0]
-            except np.linalg.LinAlgError:
-                step[cz] = _solve_safe(a_c, rhs)
-            step[~np.isfinite(step)] = 0.0
+            step[cz] = _solve(a_c, rhs)
+        # what still crosses a bound is projected (``approach`` of the way to the bound)
         p_new = np.clip(pa + step, lo, hi)
+        if approach < 1.0:
+            to_bound = p_new - pa
+            cut = (p_new != pa + step) & (np.abs(to_bound) > near_tol)
+            p_new = np.where(cut, pa + approach * to_bound, p_new)
         delta = p_new - pa
-        r_new = np.asarray(fun(p_new, index[act]), dtype=np.float64)
+        r_new, j_new = _evaluate(fun, jac, p_new, index[act], lo, hi, n_res, n_par, eager)
         cost_new = 0.5 * np.einsum("vm,vm->v", r_new, r_new)
         cost_new[~np.isfinite(cost_new)] = np.inf
         # predicted reduction of the linear model: -(g.d + 0.5 d^T JtJ d)
-        jd = (jtj[act] @ delta[:, :, None])[:, :, 0]
+        jd = (jtj_a @ delta[:, :, None])[:, :, 0]
         pred = -(np.einsum("vp,vp->v", ga, delta) + 0.5 * np.einsum("vp,vp->v", delta, jd))
         actual = cost[act] - cost_new
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -339,21 +383,38 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
         p[acc] = p_new[accept]
         r[acc] = r_new[accept]
         cost[acc] = cost_new[accept]
-        need_jac[acc] = True
-
         done_x = small_step
         done_f = small_dcost & ~done_x
-        status[act[done_x]] = STATUS_XTOL
-        status[act[done_f]] = STATUS_FTOL
         # hopeless damping: nothing more can be gained at this precision
         stuck = ~done_x & ~done_f & (lam[act] > 1e16)
+        going = ~(done_x | done_f | stuck)
+        if eager:  # normal equations at the accepted points that go on, from the cached Jacobian
+            k = accept & going
+            if np.any(k):
+                jtj[act[k]], grad[act[k]] = _normal_equations(
+                    np.asarray(j_new, np.float64)[k], r_new[k]
+                )
+        else:
+            need_jac[acc] = True
+        status[act[done_x]] = STATUS_XTOL
+        status[act[done_f]] = STATUS_FTOL
         status[act[stuck]] = STATUS_XTOL
-        act = act[~(done_x | done_f | stuck)]
+        act = act[going]
 
     p[~valid] = np.nan
     cost[~valid] = np.nan
     rms = np.sqrt(2.0 * cost / n_res)
     return p, cost, rms, iters, status
+
+
+def _solve(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Batched solve of ``a x = b`` (a: (n, P, P), b: (n, P)); a non-finite step becomes 0."""
+    try:
+        x = np.linalg.solve(a, b[:, :, None])[:, :, 0]
+    except np.linalg.LinAlgError:
+        x = _solve_safe(a, b)
+    x[~np.isfinite(x)] = 0.0
+    return x
 
 
 def _solve_safe(a: np.ndarray, b: np.ndarray) -> np.ndarray:

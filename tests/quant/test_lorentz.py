@@ -165,3 +165,44 @@ def test_lda_bad_input_names_the_problem():
 
 def test_docstring_examples_run():
     assert doctest.testmod(lorentz, raise_on_error=False).failed == 0
+
+
+def test_residual_limit_is_the_chi_square_quantile():
+    # for Gaussian noise M rms^2 / sigma^2 is chi-square with M - P degrees of freedom
+    # (goodness of fit of least squares, Press et al., Numerical Recipes 2007, 15.1, from
+    # memory); the quantile comes from scipy.stats (reference library)
+    rng = np.random.default_rng(31)
+    m, n_par, sigma = 61, 16, 1 / 30
+    rms = sigma * np.sqrt(rng.chisquare(m - n_par, 200_000) / m)
+    est = lorentz.residual_limit(rms, m, n_par)
+    given = lorentz.residual_limit(rms, m, n_par, noise_sigma=sigma)
+    assert est == pytest.approx(given, rel=0.01)  # the median-based noise estimate
+    share = np.mean(rms > given)
+    assert 0.5e-3 < share < 1.5e-3  # the stated false-flag rate, 1e-3
+    with pytest.raises(ValueError, match="noise_sigma must be positive"):
+        lorentz.residual_limit(rms, m, n_par, noise_sigma=-1.0)
+    with pytest.raises(ValueError, match="no degrees of freedom left"):
+        lorentz.residual_limit(rms, 16, 16)
+    assert np.isnan(lorentz.residual_limit(np.full(3, np.nan), m, n_par))
+
+
+def test_residual_gate_scales_with_the_noise_at_snr_30():
+    rng = np.random.default_rng(30)
+    p = np.tile(TRUE, (300, 1))
+    p[:, 4] = rng.uniform(0.01, 0.05, 300)
+    z = z_model(X, p) + rng.normal(0.0, 1 / 30, (300, X.size))
+    res = multi_lorentzian(z, X)
+    high = (res.flags & lorentz.FLAG_HIGH_RESIDUAL) != 0
+    # noise sigma 1/30 on 61 offsets, 16 parameters: the gate sits above the noise
+    assert res.rms_limit == pytest.approx(
+        lorentz.residual_limit(res.rms, X.size, 16, noise_sigma=1 / 30), rel=0.05
+    )
+    assert high.mean() < 0.02
+    # a fixed limit of 0.02 sits below this noise: nearly every voxel would be flagged
+    fixed = multi_lorentzian(z[:50], X, rms_limit=0.02)
+    assert np.mean((fixed.flags & lorentz.FLAG_HIGH_RESIDUAL) != 0) > 0.9
+    # a spectrum with a feature the model lacks (a dip at +1 ppm) is flagged
+    bad = z[:1] - 0.3 * lorentzian(X, 1.0, 0.3, 1.0)
+    assert multi_lorentzian(bad, X, noise_sigma=1 / 30).flags[0] & lorentz.FLAG_HIGH_RESIDUAL
+    with pytest.raises(ValueError, match="rms_limit must be positive"):
+        multi_lorentzian(z[:2], X, rms_limit=0.0)

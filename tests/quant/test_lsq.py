@@ -60,16 +60,17 @@ def _ref_fit(y, p0, i):
     return least_squares(f, p0[i], jac=j, bounds=(LO, HI), ftol=1e-12, xtol=1e-12, gtol=1e-12)
 
 
-@pytest.mark.parametrize("analytic", [True, False])
-def test_same_optimum_as_scipy_least_squares(problem, analytic):
+@pytest.mark.parametrize(
+    "mode, approach", [("analytic", 1.0), ("finite", 1.0), ("with_fun", 1.0), ("with_fun", 0.5)]
+)
+def test_same_optimum_as_scipy_least_squares(problem, mode, approach):
     y, p0 = problem
-    res = least_squares_batch(
-        lambda p, i: lorentz_model(p) - y[i],
-        p0,
-        jac=(lambda p, i: lorentz_jac(p)) if analytic else None,
-        lower=LO,
-        upper=HI,
-    )
+    if mode == "with_fun":  # jac=True: fun returns residuals and Jacobian together
+        fun, jac = (lambda p, i: (lorentz_model(p) - y[i], lorentz_jac(p))), True
+    else:
+        fun = lambda p, i: lorentz_model(p) - y[i]  # noqa: E731
+        jac = (lambda p, i: lorentz_jac(p)) if mode == "analytic" else None
+    res = least_squares_batch(fun, p0, jac=jac, lower=LO, upper=HI, bound_approach=approach)
     assert res.converged.all()
     sample = range(0, 300, 15)
     for i in sample:
@@ -150,5 +151,9 @@ def test_bad_arguments_name_the_problem():
         least_squares_batch(f, np.ones((2, 4)), max_iter=0)
     with pytest.raises(ValueError, match=r"jac must return shape"):
         least_squares_batch(f, np.ones((2, 4)), jac=lambda p, i: np.zeros((2, 3)))
+    with pytest.raises(ValueError, match=r"bound_approach must lie in \(0, 1\]"):
+        least_squares_batch(f, np.ones((2, 4)), bound_approach=0.0)
+    with pytest.raises(ValueError, match=r"with jac=True, fun must return a tuple"):
+        least_squares_batch(f, np.ones((2, 4)), jac=True)
     with pytest.raises(ValueError, match=r"fun must return residuals shaped \(n, M\)"):
         least_squares_batch(lambda p, i: np.zeros(2), np.ones((2, 4)))
