@@ -10,6 +10,7 @@ from __future__ import annotations
 import logging
 import re
 import shutil
+import time
 
 import pytest
 from pydicom.uid import ExplicitVRLittleEndian, MRImageStorage
@@ -115,5 +116,11 @@ def test_associations_beyond_the_limit_are_rejected(tmp_path, caplog):
             for a in held:
                 a.release()
         assert "too many associations" in caplog.text
+        # pynetdicom counts an association until its thread has ended, which is a moment after
+        # the release: wait for that (bounded) before the next scanner comes
+        deadline = time.monotonic() + 10
+        while nd.receiver._ae.active_associations and time.monotonic() < deadline:
+            time.sleep(0.02)
+        assert not nd.receiver._ae.active_associations
         # below the limit again: a scanner gets in and its series is processed
         assert_node_alive(nd, archive, collect, tmp_path, seed="after-limit")
