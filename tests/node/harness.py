@@ -77,6 +77,10 @@ class Collect:
                 f"timed out with {len(self.outcomes)} outcomes")
             return list(self.outcomes)
 
+    def wait(self, n: int = 1, timeout: float = 60.0) -> list[SeriesOutcome]:
+        """The outcomes once there are at least ``n`` (fails after ``timeout`` seconds)."""
+        return self.wait_for(lambda got: len(got) >= n, timeout=timeout)
+
 
 @contextlib.contextmanager
 def running_node(tmp_path: Path, **node: Any) -> Iterator[tuple[Node, StoreSCP, Collect]]:

@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import json
 import subprocess
-import threading
 from pathlib import Path
 
 import numpy as np
@@ -17,9 +16,10 @@ import pytest
 from pydicom import dcmread
 
 from node.config import default_config
-from node.service import Node, SeriesOutcome
+from node.service import Node
 from node.synth import series_from_arrays, write_series
 from quant.phantom import make_phantom
+from tests.node.harness import Collect
 from tests.peers import Orthanc, StoreSCP, assert_dciodvfy_clean, require, storescu
 
 pytestmark = pytest.mark.peers
@@ -40,23 +40,6 @@ def series_files(phantom, tmp_path_factory):
     files = write_series(ds, tmp_path_factory.mktemp("scanner"))
     rng = np.random.default_rng(11)
     return [files[i] for i in rng.permutation(len(files))]  # scrambled arrival order
-
-
-class Collect:
-    def __init__(self) -> None:
-        self.cond = threading.Condition()
-        self.outcomes: list[SeriesOutcome] = []
-
-    def __call__(self, o: SeriesOutcome) -> None:
-        with self.cond:
-            self.outcomes.append(o)
-            self.cond.notify_all()
-
-    def wait(self, n: int = 1, timeout: float = 60.0) -> list[SeriesOutcome]:
-        with self.cond:
-            assert self.cond.wait_for(lambda: len(self.outcomes) >= n, timeout=timeout), (
-                f"{len(self.outcomes)} of {n} series processed within {timeout} s")
-            return list(self.outcomes)
 
 
 def _node(tmp_path: Path, dest: str, collect: Collect, **over) -> Node:

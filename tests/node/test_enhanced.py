@@ -10,7 +10,6 @@ classic one-instance-per-frame series.
 from __future__ import annotations
 
 import copy
-import threading
 from dataclasses import replace
 
 import numpy as np
@@ -23,6 +22,7 @@ from node.config import OffsetRule, default_config
 from node.service import Node
 from node.synth import enhanced_series, series_from_arrays, write_series
 from quant.phantom import make_phantom
+from tests.node.harness import Collect
 from tests.peers import StoreSCP, assert_dciodvfy_clean, storescu
 
 SLICES, SIZE, SEED = 2, 32, 21
@@ -100,22 +100,6 @@ def test_per_frame_offset_missing_in_one_frame_is_named(enhanced):
         read_offset_ppm(broken, rule, frame_index=3)
 
 
-class _Collect:
-    def __init__(self) -> None:
-        self.cond = threading.Condition()
-        self.outcomes: list = []
-
-    def __call__(self, outcome) -> None:
-        with self.cond:
-            self.outcomes.append(outcome)
-            self.cond.notify_all()
-
-    def wait(self, n: int, timeout: float = 60.0) -> list:
-        with self.cond:
-            assert self.cond.wait_for(lambda: len(self.outcomes) >= n, timeout=timeout)
-            return list(self.outcomes)
-
-
 @pytest.mark.peers
 def test_storescu_enhanced_to_node_to_storescp_maps_equal_the_classic_run(
         tmp_path, enhanced, classic):
@@ -124,7 +108,7 @@ def test_storescu_enhanced_to_node_to_storescp_maps_equal_the_classic_run(
     # Enhanced MR source is not built yet (node/derive), the per-slice outputs are
     proto = replace(default_config().protocols[0], methods=("mtr_asym", "apt_star"),
                     model_based=False, outputs=("derived_mr", "secondary_capture"))
-    collect = _Collect()
+    collect = Collect()
     path = write_series([enhanced], tmp_path / "scanner")[0]
     with StoreSCP(tmp_path / "archive") as archive:
         cfg = default_config(base_dir=tmp_path).with_overrides(

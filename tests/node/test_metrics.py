@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import threading
 import urllib.request
 from pathlib import Path
 
@@ -20,9 +19,10 @@ from prometheus_client.parser import text_string_to_metric_families
 from node.config import ConfigError, MetricsSettings, default_config, parse_config
 from node.metrics import NodeMetrics, metrics_for, stage_labels
 from node.send import Destination, ItemResult, SendReport
-from node.service import Node, SeriesOutcome
+from node.service import Node
 from node.synth import series_from_arrays, write_series
 from quant.phantom import make_phantom
+from tests.node.harness import Collect
 from tests.peers import StoreSCP, storescu
 
 SLICES, SIZE = 2, 32
@@ -43,22 +43,6 @@ def _scrape(port: int) -> str:
     with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=10) as r:  # noqa: S310
         assert r.status == 200
         return r.read().decode()
-
-
-class Collect:
-    def __init__(self) -> None:
-        self.cond = threading.Condition()
-        self.outcomes: list[SeriesOutcome] = []
-
-    def __call__(self, o: SeriesOutcome) -> None:
-        with self.cond:
-            self.outcomes.append(o)
-            self.cond.notify_all()
-
-    def wait(self, n: int, timeout: float = 60.0) -> list[SeriesOutcome]:
-        with self.cond:
-            assert self.cond.wait_for(lambda: len(self.outcomes) >= n, timeout=timeout)
-            return list(self.outcomes)
 
 
 @pytest.fixture(scope="module")
