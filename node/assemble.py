@@ -52,6 +52,7 @@ __all__ = [
     "Assembler",
     "AssemblyError",
     "Frame",
+    "FrameHeader",
     "Placed",
     "Prepared",
     "read_offset_ppm",
@@ -390,22 +391,44 @@ _FRAME_KEYWORDS = ("ImagePositionPatient", "ImageOrientationPatient", "PixelSpac
                    "SliceThickness", "SpacingBetweenSlices")
 
 
-def _frame_header(header: Dataset, cands: list[Dataset]) -> Dataset:
+class FrameHeader(Dataset):
+    """A single-frame view of one frame of a multi-frame (Enhanced MR) instance.
+
+    Its elements are those of a single-frame image (see :func:`_frame_header`), so the
+    builders that take one header per slice (derived MR, Secondary Capture) read it like a
+    classic MR header. Two plain attributes (not DICOM elements) keep the way back to the
+    real instance, for the builders that must name it (Parametric Map, Segmentation):
+
+    ``multiframe``
+        The instance's own header without its pixel data: functional groups kept, one object
+        shared by the views of all its frames.
+    ``frame_number``
+        The frame's number in the instance, 1-based (Referenced Frame Number, PS3.3 C.7.6.1.1).
+    """
+
+    multiframe: Dataset
+    frame_number: int
+
+
+def _frame_header(header: Dataset, cands: list[Dataset], frame_number: int) -> FrameHeader:
     """A single-frame view of one frame of a multi-frame instance, for the derive builders.
 
     The instance's top-level elements (shared, not copied) without the functional group
     sequences and NumberOfFrames, plus the frame's geometry (ImagePositionPatient,
     ImageOrientationPatient, PixelSpacing, SliceThickness) from its functional groups
-    (PS3.3 C.7.6.16.2: Plane Position, Plane Orientation, Pixel Measures).
+    (PS3.3 C.7.6.16.2: Plane Position, Plane Orientation, Pixel Measures). ``header`` itself
+    is kept as :attr:`FrameHeader.multiframe`.
     """
     drop = {_PER_FRAME, _SHARED, Tag(0x0028, 0x0008)}
-    hdr = Dataset({t: e for t, e in header._dict.items() if t not in drop})
+    hdr = FrameHeader({t: e for t, e in header._dict.items() if t not in drop})
     if hasattr(header, "file_meta"):
         hdr.file_meta = header.file_meta
     for kw in _FRAME_KEYWORDS:
         value = _find(cands[:-1], keyword=kw)
         if value is not None:
             setattr(hdr, kw, value)
+    hdr.multiframe = header
+    hdr.frame_number = frame_number
     return hdr
 
 
@@ -630,7 +653,7 @@ class Assembler:
             if multi:
                 cands = _candidates(ds, fi)
                 img = self._frame_rescale(img, cands)
-                frame_header = _frame_header(header, cands)
+                frame_header = _frame_header(header, cands, i + 1)
             frames.append(Frame(offset, position, img, (instance_number, str(sop), i),
                                 frame_number=i + 1 if multi else None, header=frame_header))
         iia = ds.get("ImagesInAcquisition")

@@ -9,7 +9,7 @@ import datetime as _dt
 import math
 import re
 import uuid
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from pydicom import Dataset
@@ -124,6 +124,45 @@ def source_image_item(ref: Dataset) -> Dataset:
     return item
 
 
+def frame_of(ref: Dataset) -> tuple[Dataset, int] | None:
+    """``(instance header, frame number)`` when ``ref`` is a view of one frame of a
+    multi-frame instance (it carries ``.multiframe`` and ``.frame_number``, as
+    :class:`node.assemble.FrameHeader` does), else None."""
+    mf = getattr(ref, "multiframe", None)
+    if mf is None:
+        return None
+    return mf, getattr(ref, "frame_number", None)  # type: ignore[return-value]
+
+
+def multiframe_sources(refs: list[Dataset]) -> list[Dataset]:
+    """The distinct multi-frame instances the references are frames of (first seen first);
+    empty for single-frame references. Raises ValueError when they mix the two kinds, or a
+    frame view does not fit its instance."""
+    frames = [frame_of(r) for r in refs]
+    if all(f is None for f in frames):
+        return []
+    out: dict[str, Dataset] = {}
+    for i, (ref, f) in enumerate(zip(refs, frames, strict=True)):
+        if f is None:
+            raise ValueError(f"references[{i}] is a single-frame image but other references "
+                             "are frames of a multi-frame instance")
+        mf, number = f
+        for tag in ("SharedFunctionalGroupsSequence", "PerFrameFunctionalGroupsSequence",
+                    "NumberOfFrames", "SOPInstanceUID"):
+            if tag not in mf:
+                raise ValueError(f"references[{i}].multiframe lacks {tag}")
+        n_frames = int(mf.NumberOfFrames)
+        if (isinstance(number, bool) or not isinstance(number, int)
+                or not 1 <= number <= min(n_frames, len(mf.PerFrameFunctionalGroupsSequence))):
+            raise ValueError(f"references[{i}].frame_number {number!r} is outside the "
+                             f"instance's frames 1..{n_frames}")
+        if str(mf.SOPInstanceUID) != str(ref.SOPInstanceUID):
+            raise ValueError(f"references[{i}] names SOP Instance {ref.SOPInstanceUID} but is "
+                             "a frame of another instance")
+        out.setdefault(str(mf.SOPInstanceUID), mf)
+    return list(out.values())
+
+
 def _check_ascii(name: str, text: str) -> None:
     if not text.isascii() or not text.isprintable():
         raise ValueError(f"{name} must be printable ASCII (it goes into DICOM LO/LT), got {text!r}")
@@ -138,7 +177,11 @@ class DerivedRequest:
     references
         One dataset per slice, in slice order: classic MR Image Storage headers of the source
         series (pixel data may be absent). Geometry, patient, study and the Source Image
-        Sequence come from them.
+        Sequence come from them. For a multi-frame (Enhanced MR) source each reference is a
+        single-frame view of one frame of the instance that keeps the instance's header as
+        ``.multiframe`` and its 1-based ``.frame_number`` (:class:`node.assemble.FrameHeader`):
+        the Parametric Map and the Segmentation then name that instance, with frame numbers,
+        and take the frame geometry from its functional groups.
     values
         The map, ``(slices, rows, cols)``, converted to float32; NaN marks an invalid voxel.
         Infinite values are refused.
@@ -180,6 +223,8 @@ class DerivedRequest:
     unit_meaning: str = ""
     sources: list[Dataset] | None = None
     note: str = ""
+    multiframe: list[Dataset] = field(init=False, default_factory=list, repr=False)
+    """The multi-frame instances the references are frames of (empty for classic sources)."""
 
     def __post_init__(self) -> None:
         refs = list(self.references)
@@ -212,6 +257,7 @@ class DerivedRequest:
             raise ValueError("references come from more than one study")
         if len({str(r.FrameOfReferenceUID) for r in refs}) != 1:
             raise ValueError("references have more than one FrameOfReferenceUID")
+        self.multiframe = multiframe_sources(refs)
         if not isinstance(self.series_uid, str) or len(self.series_uid) > 64 or not _UID_RE.match(
             self.series_uid
         ):

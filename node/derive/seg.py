@@ -36,6 +36,7 @@ from node.derive.request import (
     copy_keywords,
     output_uid,
 )
+from node.derive.sources import source_arguments
 from quant.qc import candidate_region
 
 KIND = "seg"
@@ -102,7 +103,8 @@ def build(req: ReportRequest) -> list[Dataset]:
     )
     segment.SegmentDescription = SEGMENT_DESCRIPTION
     seg = hd.seg.Segmentation(
-        source_images=req.references,
+        # an Enhanced MR source: the instance, with per-frame references (node.derive.sources)
+        **source_arguments(req.references),
         pixel_array=region.astype(np.uint8),
         segmentation_type=hd.seg.SegmentationTypeValues.BINARY,
         segment_descriptions=[segment],

@@ -42,6 +42,7 @@ from node.derive.report import ReportRequest, report_description
 from node.derive.request import (
     MANUFACTURER,
     SOFTWARE_VERSIONS,
+    frame_of,
     output_uid,
 )
 
@@ -103,6 +104,25 @@ def _measurement(name: CodedConcept | Code, value: float, unit: CodedConcept, *,
                              finding_sites=sites)
 
 
+def _source_slices(req: ReportRequest) -> list[hd.sr.SourceImageForMeasurementGroup]:
+    """The source slices of a measurement group: one item per single-frame reference, or per
+    multi-frame instance with the frame numbers of the slices' reference frames (Referenced
+    Frame Number of an IMAGE content item, PS3.3 C.18.4 Image Reference Macro, from memory)."""
+    frames: dict[str, tuple[str, list[int]]] = {}
+    singles: list[hd.sr.SourceImageForMeasurementGroup] = []
+    for ref in req.references:
+        f = frame_of(ref)
+        if f is None:
+            singles.append(hd.sr.SourceImageForMeasurementGroup(str(ref.SOPClassUID),
+                                                                str(ref.SOPInstanceUID)))
+            continue
+        entry = frames.setdefault(str(ref.SOPInstanceUID), (str(ref.SOPClassUID), []))
+        entry[1].append(int(f[1]))
+    return singles + [
+        hd.sr.SourceImageForMeasurementGroup(cls, uid, referenced_frame_numbers=sorted(nums))
+        for uid, (cls, nums) in frames.items()]
+
+
 def _method_group(req: ReportRequest, index: int, method: str) -> hd.sr.MeasurementsAndQualitativeEvaluations:
     ms = req.methods[method]
     quantity = quantity_concept(method, ms.title)
@@ -126,9 +146,7 @@ def _method_group(req: ReportRequest, index: int, method: str) -> hd.sr.Measurem
         sources = [hd.sr.SourceImageForMeasurementGroup(str(pm.SOPClassUID),
                                                         str(pm.SOPInstanceUID))]
     else:
-        sources = [hd.sr.SourceImageForMeasurementGroup(str(r.SOPClassUID),
-                                                        str(r.SOPInstanceUID))
-                   for r in req.references]
+        sources = _source_slices(req)
     return hd.sr.MeasurementsAndQualitativeEvaluations(
         tracking_identifier=hd.sr.TrackingIdentifier(
             uid=output_uid(req.series_uid, "sr-group", index), identifier=method[:64]),

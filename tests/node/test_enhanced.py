@@ -4,7 +4,8 @@ Frames are placed by their per-frame Plane Position and read their offset per fr
 C.7.6.16 Multi-frame Functional Groups; C.7.6.16.2.2 Frame Content, C.7.6.16.2.3 Plane
 Position). The object is checked against its IOD by dciodvfy (dicom3tools), sent by DCMTK
 storescu to the running node, and the maps must equal those of the same phantom sent as a
-classic one-instance-per-frame series.
+classic one-instance-per-frame series; so must the Parametric Map, whose source is the
+multi-frame instance itself.
 """
 
 from __future__ import annotations
@@ -15,10 +16,19 @@ from dataclasses import replace
 import numpy as np
 import pytest
 from pydicom import dcmread
+from pydicom.uid import (
+    Comprehensive3DSRStorage,
+    EnhancedMRImageStorage,
+    MRImageStorage,
+    ParametricMapStorage,
+    SecondaryCaptureImageStorage,
+    SegmentationStorage,
+)
 
 from node import pipeline
 from node.assemble import Assembler, AssemblyError, read_offset_ppm
 from node.config import OffsetRule, default_config
+from node.derive import BUILDERS, DerivedRequest
 from node.service import Node
 from node.synth import enhanced_series, series_from_arrays, write_series
 from quant.phantom import make_phantom
@@ -100,14 +110,31 @@ def test_per_frame_offset_missing_in_one_frame_is_named(enhanced):
         read_offset_ppm(broken, rule, frame_index=3)
 
 
+def _frames_at(enhanced, ipp):
+    """1-based numbers of the frames of ``enhanced`` whose per-frame Plane Position is ``ipp``
+    (PS3.3 C.7.6.16.2.3)."""
+    want = [float(v) for v in ipp]
+    return sorted(i + 1 for i, item in enumerate(enhanced.PerFrameFunctionalGroupsSequence)
+                  if np.allclose([float(v) for v in item.PlanePositionSequence[0]
+                                  .ImagePositionPatient], want, atol=1e-3))
+
+
+def _pm_frames(pm):
+    """(ImagePositionPatient, float frame) of each frame of a Parametric Map, in file order."""
+    pixels = pm.pixel_array.reshape(-1, pm.Rows, pm.Columns)
+    return [([float(v) for v in item.PlanePositionSequence[0].ImagePositionPatient], pixels[k])
+            for k, item in enumerate(pm.PerFrameFunctionalGroupsSequence)]
+
+
 @pytest.mark.peers
 def test_storescu_enhanced_to_node_to_storescp_maps_equal_the_classic_run(
         tmp_path, enhanced, classic):
-    # highdicom 0.28 takes a multi-frame source as ONE source image with its per-frame
-    # geometry, while DerivedRequest wants one reference per slice: the Parametric Map of an
-    # Enhanced MR source is not built yet (node/derive), the per-slice outputs are
+    # every output of an Enhanced MR source, the Parametric Map included: highdicom takes the
+    # multi-frame instance itself as the PM's source (node/derive/sources.py)
     proto = replace(default_config().protocols[0], methods=("mtr_asym", "apt_star"),
-                    model_based=False, outputs=("derived_mr", "secondary_capture"))
+                    model_based=False,
+                    outputs=("derived_mr", "secondary_capture", "parametric_map",
+                             "structured_report", "segmentation"))
     collect = Collect()
     path = write_series([enhanced], tmp_path / "scanner")[0]
     with StoreSCP(tmp_path / "archive") as archive:
@@ -122,12 +149,45 @@ def test_storescu_enhanced_to_node_to_storescp_maps_equal_the_classic_run(
             files = archive.wait_for(outcome.objects)
     # the classic series through the same pipeline, offline
     prep = pipeline.prepare(classic.signal, classic.offsets_ppm)
-    for name in ("mtr_asym", "apt_star"):
-        np.testing.assert_array_equal(outcome.maps[name],
-                                      pipeline.compute(prep, name).values)
+    classic_maps = {name: pipeline.compute(prep, name).values for name in ("mtr_asym", "apt_star")}
+    for name, values in classic_maps.items():
+        np.testing.assert_array_equal(outcome.maps[name], values)
     # the derived objects of an Enhanced MR source pass their IODs (dciodvfy)
     one_of_each = {}
+    pms = []
     for f in files:
-        one_of_each.setdefault(str(dcmread(f, stop_before_pixels=True).SOPClassUID), f)
-    assert len(one_of_each) == 2
+        ds = dcmread(f, stop_before_pixels=True)
+        one_of_each.setdefault(str(ds.SOPClassUID), f)
+        if ds.SOPClassUID == ParametricMapStorage:
+            pms.append(f)
+    assert set(one_of_each) == {MRImageStorage, SecondaryCaptureImageStorage,
+                                ParametricMapStorage, Comprehensive3DSRStorage,
+                                SegmentationStorage}
     assert_dciodvfy_clean(one_of_each.values())
+    assert len(pms) == 2
+    for f in pms:
+        pm = dcmread(f)
+        name = {"MTR_ASYM": "mtr_asym", "APT_STAR": "apt_star"}[pm.ContentLabel]
+        # the PM built from the classic series by the same builder: same frame positions in
+        # the same order, the same float32 values (NaN where invalid)
+        classic_pm = BUILDERS["parametric_map"](DerivedRequest(
+            references=classic.references, values=classic_maps[name], method=name,
+            title=name, unit_ucum="%", series_uid="1.2.826.0.1.3680043.10.1", series_number=1))[0]
+        got, want = _pm_frames(pm), _pm_frames(classic_pm)
+        assert len(got) == SLICES
+        for (gp, gv), (wp, wv) in zip(got, want, strict=True):
+            assert gp == pytest.approx(wp, abs=1e-4)
+            np.testing.assert_array_equal(gv, wv)
+        # the source is the real multi-frame instance, named once (Source Image Sequence of
+        # the General Image module, PS3.3 C.7.6.1, from memory), each PM frame derived from
+        # every frame of its slice (Derivation Image Macro, PS3.3 C.7.6.16.2.6: Referenced
+        # Frame Number per source frame)
+        assert [(r.ReferencedSOPClassUID, r.ReferencedSOPInstanceUID)
+                for r in pm.SourceImageSequence] == [(EnhancedMRImageStorage,
+                                                      enhanced.SOPInstanceUID)]
+        for item, (ipp, _) in zip(pm.PerFrameFunctionalGroupsSequence, got, strict=True):
+            srcs = item.DerivationImageSequence[0].SourceImageSequence
+            assert {s.ReferencedSOPInstanceUID for s in srcs} == {enhanced.SOPInstanceUID}
+            assert sorted(int(s.ReferencedFrameNumber) for s in srcs) == \
+                _frames_at(enhanced, ipp)
+            assert len(srcs) == classic.signal.shape[-1]
