@@ -260,85 +260,74 @@ def _normal_equations(j, r):
 
 
 def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda0, approach):
+    """One block of voxels. The working arrays hold the active voxels only: a voxel that
+    finishes is written out and dropped (compaction), so late iterations cost what the few
+    remaining voxels cost, without fancy indexing of the whole block at every step."""
     n, n_par = p0.shape
     eager = jac is True
-    p = np.clip(p0, lo, hi)
-    p[~np.isfinite(p0)] = np.nan
-    r, j0 = _evaluate(fun, jac, p, index, lo, hi, None, n_par, eager)
+    p_out = np.clip(p0, lo, hi)
+    p_out[~np.isfinite(p0)] = np.nan
+    r, j0 = _evaluate(fun, jac, p_out, index, lo, hi, None, n_par, eager)
     n_res = r.shape[1]
-    valid = np.all(np.isfinite(r), axis=1) & np.all(np.isfinite(p), axis=1)
-    cost = 0.5 * np.einsum("vm,vm->v", r, r)
+    valid = np.all(np.isfinite(r), axis=1) & np.all(np.isfinite(p_out), axis=1)
+    cost_out = 0.5 * np.einsum("vm,vm->v", r, r)
     status = np.where(valid, STATUS_MAXITER, STATUS_INVALID)
     iters = np.zeros(n, dtype=np.int64)
-    lam = np.full(n, lambda0)
-    nu = np.full(n, 2.0)
-    dscale = np.zeros((n, n_par))
     eye = np.eye(n_par)
+    diag = np.arange(n_par)
     span = np.where(np.isfinite(hi - lo), hi - lo, 1.0)
     near_tol = 1e-3 * span  # closer than this to a bound, a crossing step lands on the bound
 
-    act = np.flatnonzero(valid)  # active voxels (positions in this block)
-    jtj = np.zeros((n, n_par, n_par))
-    grad = np.zeros((n, n_par))
-    need_jac = np.zeros(n, dtype=bool)
+    # the active set, compacted: position in the block and its state
+    pos = np.flatnonzero(valid)
+    p = p_out[pos]
+    r = r[pos]
+    cost = cost_out[pos]
+    lam = np.full(pos.size, lambda0)
+    nu = np.full(pos.size, 2.0)
     if eager:
-        if act.size:
-            jtj[act], grad[act] = _normal_equations(np.asarray(j0, np.float64)[act], r[act])
+        jtj, grad = _normal_equations(np.asarray(j0, np.float64)[pos], r)
     else:
-        need_jac[act] = True
+        jtj, grad = _jacobian_normal(fun, jac, p, index[pos], r, lo, hi, n_res, n_par)
     del j0
-    for _ in range(max_iter):
-        if act.size == 0:
-            break
-        # --- Jacobian and normal equations where the point moved (lazy mode only)
-        upd = act[need_jac[act]]
-        if upd.size:
-            if jac is None:
-                j_upd = finite_difference_jacobian(
-                    fun, p[upd], index[upd], lower=lo, upper=hi, r0=r[upd]
-                )
-            else:
-                j_upd = np.asarray(jac(p[upd], index[upd]), dtype=np.float64)
-            _check_jac(j_upd, upd.size, n_res, n_par)
-            jtj[upd], grad[upd] = _normal_equations(j_upd, r[upd])
-            need_jac[upd] = False
-        dscale[act] = np.maximum(dscale[act], np.einsum("vpp->vp", jtj[act]))
-
-        pa, ga = p[act], grad[act]
+    dscale = jtj[:, diag, diag].copy()
+    n_it = 0
+    while pos.size and n_it < max_iter:
+        n_it += 1
         # active set: on a bound with the gradient pointing out of the box
-        frozen = ((pa <= lo) & (ga > 0)) | ((pa >= hi) & (ga < 0))
-        g_free = np.where(frozen, 0.0, ga)
+        frozen = ((p <= lo) & (grad > 0)) | ((p >= hi) & (grad < 0))
+        g_free = np.where(frozen, 0.0, grad)
         done_g = np.max(np.abs(g_free), axis=1) < gtol
         if np.any(done_g):
-            status[act[done_g]] = STATUS_GTOL
-            keep_g = ~done_g
-            act, pa, ga, frozen, g_free = act[keep_g], pa[keep_g], ga[keep_g], frozen[keep_g], g_free[keep_g]
-            if act.size == 0:
+            status[pos[done_g]] = STATUS_GTOL
+            p_out[pos[done_g]] = p[done_g]
+            cost_out[pos[done_g]] = cost[done_g]
+            keep = ~done_g
+            pos, p, r, cost, lam, nu = pos[keep], p[keep], r[keep], cost[keep], lam[keep], nu[keep]
+            jtj, grad, dscale = jtj[keep], grad[keep], dscale[keep]
+            frozen, g_free = frozen[keep], g_free[keep]
+            if pos.size == 0:
                 break
-
-        n_act = act.size
-        ds = dscale[act]
-        d = np.maximum(ds, 1e-12 * np.maximum(ds.max(axis=1, keepdims=True), 1.0))
-        jtj_a = jtj[act]  # a copy (fancy indexing), kept for the predicted reduction
-        a_damped = jtj_a.copy()
-        a_damped.reshape(n_act, -1)[:, :: n_par + 1] += lam[act, None] * d
+        d = np.maximum(dscale, 1e-12 * np.maximum(dscale.max(axis=1, keepdims=True), 1.0))
+        a_damped = jtj.copy()
+        a_damped[:, diag, diag] += lam[:, None] * d
         a = a_damped
         if frozen.any():  # frozen parameters: identity rows and columns, zero step
-            keep = (~frozen).astype(np.float64)
-            a = a_damped * (keep[:, :, None] * keep[:, None, :])
-            a.reshape(n_act, -1)[:, :: n_par + 1] += frozen
+            keep_f = (~frozen).astype(np.float64)
+            a = a_damped * (keep_f[:, :, None] * keep_f[:, None, :])
+            a[:, diag, diag] += frozen
         step = _solve(a, -g_free)
         # a step that crosses a bound: hold those parameters (on the bound, or ``approach`` of
         # the way there) and re-solve for the others (a few passes), instead of clipping a
         # correlated step
         fixed = frozen.copy()
         for _pass in range(3):
-            trial = pa + step
+            trial = p + step
             crossing = ((trial < lo) | (trial > hi)) & ~fixed
             cz = np.flatnonzero(crossing.any(axis=1))
             if cz.size == 0:
                 break
-            to_bound = np.clip(trial[cz], lo, hi) - pa[cz]
+            to_bound = np.clip(trial[cz], lo, hi) - p[cz]
             if approach < 1.0:
                 to_bound = np.where(np.abs(to_bound) > near_tol, approach * to_bound, to_bound)
             dc = np.where(crossing[cz], to_bound, 0.0)
@@ -346,65 +335,79 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
             a_c = a_damped[cz]
             rhs = -g_free[cz] - (a_c @ held[:, :, None])[:, :, 0]
             fixed[cz] |= crossing[cz]
-            keep = (~fixed[cz]).astype(np.float64)
-            a_c *= keep[:, :, None] * keep[:, None, :]
+            keep_c = (~fixed[cz]).astype(np.float64)
+            a_c *= keep_c[:, :, None] * keep_c[:, None, :]
             a_c += fixed[cz][:, :, None] * eye
             rhs = np.where(fixed[cz], held, rhs)
             step[cz] = _solve(a_c, rhs)
         # what still crosses a bound is projected (``approach`` of the way to the bound)
-        p_new = np.clip(pa + step, lo, hi)
+        p_new = np.clip(p + step, lo, hi)
         if approach < 1.0:
-            to_bound = p_new - pa
-            cut = (p_new != pa + step) & (np.abs(to_bound) > near_tol)
-            p_new = np.where(cut, pa + approach * to_bound, p_new)
-        delta = p_new - pa
-        r_new, j_new = _evaluate(fun, jac, p_new, index[act], lo, hi, n_res, n_par, eager)
+            to_bound = p_new - p
+            cut = (p_new != p + step) & (np.abs(to_bound) > near_tol)
+            p_new = np.where(cut, p + approach * to_bound, p_new)
+        delta = p_new - p
+        r_new, j_new = _evaluate(fun, jac, p_new, index[pos], lo, hi, n_res, n_par, eager)
         cost_new = 0.5 * np.einsum("vm,vm->v", r_new, r_new)
         cost_new[~np.isfinite(cost_new)] = np.inf
         # predicted reduction of the linear model: -(g.d + 0.5 d^T JtJ d)
-        jd = (jtj_a @ delta[:, :, None])[:, :, 0]
-        pred = -(np.einsum("vp,vp->v", ga, delta) + 0.5 * np.einsum("vp,vp->v", delta, jd))
-        actual = cost[act] - cost_new
+        jd = (jtj @ delta[:, :, None])[:, :, 0]
+        pred = -(np.einsum("vp,vp->v", grad, delta) + 0.5 * np.einsum("vp,vp->v", delta, jd))
+        actual = cost - cost_new
         with np.errstate(divide="ignore", invalid="ignore"):
             rho = np.where(pred > 0, actual / pred, -1.0)
         accept = (rho > 0) & (actual > 0)
-        iters[act] += 1
+        iters[pos] += 1
 
         # damping update (Madsen, Nielsen & Tingleff 2004, Alg. 3.16)
-        acc, rej = act[accept], act[~accept]
-        lam[acc] *= np.maximum(1.0 / 3.0, 1.0 - (2.0 * rho[accept] - 1.0) ** 3)
-        nu[acc] = 2.0
-        lam[rej] *= nu[rej]
-        nu[rej] *= 2.0
+        lam = np.where(accept, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * rho - 1.0) ** 3), lam * nu)
+        nu = np.where(accept, 2.0, 2.0 * nu)
 
-        pnorm = np.linalg.norm(pa, axis=1)
-        small_step = np.linalg.norm(delta, axis=1) < xtol * (xtol + pnorm)
-        small_dcost = accept & (actual < ftol * cost[act])
-        p[acc] = p_new[accept]
-        r[acc] = r_new[accept]
-        cost[acc] = cost_new[accept]
-        done_x = small_step
-        done_f = small_dcost & ~done_x
+        pnorm = np.linalg.norm(p, axis=1)
+        done_x = np.linalg.norm(delta, axis=1) < xtol * (xtol + pnorm)
+        done_f = accept & (actual < ftol * cost) & ~done_x
+        p[accept] = p_new[accept]
+        r[accept] = r_new[accept]
+        cost[accept] = cost_new[accept]
         # hopeless damping: nothing more can be gained at this precision
-        stuck = ~done_x & ~done_f & (lam[act] > 1e16)
+        stuck = ~done_x & ~done_f & (lam > 1e16)
         going = ~(done_x | done_f | stuck)
-        if eager:  # normal equations at the accepted points that go on, from the cached Jacobian
-            k = accept & going
-            if np.any(k):
-                jtj[act[k]], grad[act[k]] = _normal_equations(
-                    np.asarray(j_new, np.float64)[k], r_new[k]
-                )
-        else:
-            need_jac[acc] = True
-        status[act[done_x]] = STATUS_XTOL
-        status[act[done_f]] = STATUS_FTOL
-        status[act[stuck]] = STATUS_XTOL
-        act = act[going]
+        status[pos[done_x | stuck]] = STATUS_XTOL
+        status[pos[done_f]] = STATUS_FTOL
+        # normal equations at the accepted points that go on
+        k = accept & going
+        if np.any(k):
+            if eager:  # from the Jacobian computed with the trial residuals
+                jtj_k, grad_k = _normal_equations(np.asarray(j_new, np.float64)[k], r_new[k])
+            else:
+                kk = np.flatnonzero(k)
+                jtj_k, grad_k = _jacobian_normal(fun, jac, p[kk], index[pos[kk]], r[kk], lo, hi,
+                                                 n_res, n_par)
+            jtj[k], grad[k] = jtj_k, grad_k
+            dscale[k] = np.maximum(dscale[k], jtj_k[:, diag, diag])
+        del j_new
+        if not going.all():  # finished voxels: write out, drop from the working arrays
+            done = ~going
+            p_out[pos[done]] = p[done]
+            cost_out[pos[done]] = cost[done]
+            pos, p, r, cost, lam, nu = pos[going], p[going], r[going], cost[going], lam[going], nu[going]
+            jtj, grad, dscale = jtj[going], grad[going], dscale[going]
+    p_out[pos] = p  # the iteration limit reached by the rest
+    cost_out[pos] = cost
+    p_out[~valid] = np.nan
+    cost_out[~valid] = np.nan
+    rms = np.sqrt(2.0 * cost_out / n_res)
+    return p_out, cost_out, rms, iters, status
 
-    p[~valid] = np.nan
-    cost[~valid] = np.nan
-    rms = np.sqrt(2.0 * cost / n_res)
-    return p, cost, rms, iters, status
+
+def _jacobian_normal(fun, jac, p, index, r, lo, hi, n_res, n_par):
+    """Normal equations from a separate Jacobian call (finite differences when ``jac`` is None)."""
+    if jac is None:
+        j = finite_difference_jacobian(fun, p, index, lower=lo, upper=hi, r0=r)
+    else:
+        j = np.asarray(jac(p, index), dtype=np.float64)
+    _check_jac(j, p.shape[0], n_res, n_par)
+    return _normal_equations(j, r)
 
 
 def _solve(a: np.ndarray, b: np.ndarray) -> np.ndarray:
