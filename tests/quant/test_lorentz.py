@@ -95,7 +95,7 @@ def test_neighbourhood_init_fits_each_voxel_on_its_own():
     np.testing.assert_allclose(res.map, p[..., 4], atol=1e-4)
     with pytest.raises(ValueError, match="needs at least two spatial axes"):
         multi_lorentzian(z[0], X, init="neighbourhood")
-    with pytest.raises(ValueError, match="init must be 'table' or 'neighbourhood'"):
+    with pytest.raises(ValueError, match="init must be 'mean', 'table' or 'neighbourhood'"):
         multi_lorentzian(z, X, init="smooth")
 
 
@@ -206,3 +206,50 @@ def test_residual_gate_scales_with_the_noise_at_snr_30():
     assert multi_lorentzian(bad, X, noise_sigma=1 / 30).flags[0] & lorentz.FLAG_HIGH_RESIDUAL
     with pytest.raises(ValueError, match="rms_limit must be positive"):
         multi_lorentzian(z[:2], X, rms_limit=0.0)
+
+
+def test_mean_init_reaches_the_scipy_least_squares_optimum_on_most_voxels():
+    # reference library: scipy.optimize.least_squares (trust-region reflective), same model,
+    # bounds, analytic Jacobian and the same per-voxel start (initial_params, init='mean').
+    # The five-pool cost has several local minima even at SNR 200, so the two solvers need not
+    # end in the same one on every voxel; stated tolerance: the residual RMS within 1e-4
+    # relative on at least 80 % of the voxels (measured 85 % here), and the median residual RMS
+    # not above the reference's by more than 1e-5 relative.
+    from scipy.optimize import least_squares
+
+    from quant.lorentz import _model_and_jac, _param_layout, initial_params
+
+    rng = np.random.default_rng(7)
+    n = 40
+    p = np.tile(TRUE, (n, 1))
+    p[:, 4] = rng.uniform(0.01, 0.05, n)
+    p[:, 3] = rng.uniform(-0.3, 0.3, n)
+    z = z_model(X, p) + rng.normal(0.0, 1 / 200, (n, X.size))
+    res = multi_lorentzian(z, X)
+    _, start, lo, hi = _param_layout(POOLS_5)
+    p0 = initial_params(z, X, np.ones(X.size), start, lo, hi, (n,), "mean")
+    assert np.all((p0 >= lo) & (p0 <= hi))
+    ref_rms = np.empty(n)
+    for i in range(n):
+        ref = least_squares(
+            lambda q, i=i: _model_and_jac(q[None], X, False)[0][0] - z[i],
+            p0[i],
+            jac=lambda q: np.ascontiguousarray(_model_and_jac(q[None], X, True)[1][0]),
+            bounds=(lo, hi), ftol=1e-12, xtol=1e-12, gtol=1e-12, max_nfev=5000,
+        )
+        ref_rms[i] = np.sqrt(np.mean(ref.fun**2))
+    rel = (res.rms - ref_rms) / ref_rms
+    assert np.mean(np.abs(rel) <= 1e-4) >= 0.8
+    assert np.median(res.rms) <= np.median(ref_rms) * (1 + 1e-5)
+
+
+def test_init_mean_without_valid_voxels_falls_back_to_the_table():
+    from quant.lorentz import _param_layout, initial_params
+
+    _, start, lo, hi = _param_layout(POOLS_5)
+    z = np.full((3, X.size), np.nan)
+    p0 = initial_params(z, X, np.ones(X.size), start, lo, hi, (3,), "mean")
+    table = initial_params(z, X, np.ones(X.size), start, lo, hi, (3,), "table")
+    np.testing.assert_array_equal(p0, table)
+    res = multi_lorentzian(z, X)
+    assert np.all(np.isnan(res.map)) and np.all(res.flags & FLAG_INVALID_INPUT)
