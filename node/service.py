@@ -27,7 +27,14 @@ from pydicom.uid import ParametricMapStorage as PARAMETRIC_MAP
 from node import pipeline
 from node.calibrate import CalibrationReport, calibrate_for, learn_from_record
 from node.config import NodeConfig, Protocol
-from node.derive import BUILDERS, REPORT_BUILDERS, DerivedRequest, ReportRequest, qc_note
+from node.derive import (
+    BUILDERS,
+    REPORT_BUILDERS,
+    DerivedRequest,
+    ReportRequest,
+    header_only,
+    qc_note,
+)
 from node.metrics import metrics_for
 from node.outbox import Outbox, OutboxWorker, RetryPolicy
 from node.receive import Receiver
@@ -99,6 +106,9 @@ class DeferredJob:
     protocol: Protocol
     prep: pipeline.Prepared
     methods: list[str]
+    reported: list[tuple[pipeline.MethodResult, Dataset | None]] = field(default_factory=list)
+    """The budget-bound pass's maps with their Parametric Maps (header only), which the
+    deferred report covers beside the fits; empty for a job resumed after a restart."""
 
 
 class Processor:
@@ -171,7 +181,9 @@ class Processor:
         clock = SeriesClock(series.key)
         clock.mark("deferred_start")
         outcome = SeriesOutcome(series.key, protocol.name, ok=True)
-        note = self._note(series, self._qc(job.prep, protocol)[1])
+        figures, reasons = self._qc(job.prep, protocol)
+        note = self._note(series, reasons)
+        fitted: list[tuple[pipeline.MethodResult, Dataset | None]] = []
         for name in job.methods:
             last_log = [time.monotonic()]
 
@@ -187,7 +199,9 @@ class Processor:
                 with clock.stage(f"method:{name}"):
                     res = pipeline.compute(job.prep, name, chunk_voxels=self.CHUNK_VOXELS,
                                            between_chunks=progress)
-                self._emit(series, protocol, job.prep, res, clock, outcome, note=note)
+                built = self._emit(series, protocol, job.prep, res, clock, outcome, note=note)
+                fitted.append((res, next((d for d in built if d.SOPClassUID == PARAMETRIC_MAP),
+                                         None)))
                 log.info("series %s: deferred %s done in %.1f s", series.key, name, res.seconds)
             except pipeline.Abandoned as exc:
                 outcome.ok = False
@@ -199,6 +213,14 @@ class Processor:
                 outcome.ok = False
                 outcome.error = f"{name}: {type(exc).__name__}: {exc}"
                 log.exception("series %s: deferred %s failed", series.key, name)
+        if fitted and not outcome.abandoned:
+            try:  # a second report covering every map of the series, the fits included
+                self._reports(series, protocol, job.prep, job.reported + fitted, figures,
+                              reasons, clock, outcome, deferred=[r.name for r, _ in fitted])
+            except Exception as exc:
+                outcome.ok = False
+                outcome.error = outcome.error or f"report: {type(exc).__name__}: {exc}"
+                log.exception("series %s: deferred report failed", series.key)
         clock.mark("last_ack")
         outcome.record = clock.record(
             budget_s=protocol.budget_s, protocol=protocol.name, methods=outcome.methods,
@@ -289,7 +311,9 @@ class Processor:
         clock.mark("last_ack")
         outcome.ok = not outcome.error
         if plan.deferred:
-            return DeferredJob(series, protocol, prep, list(plan.deferred))
+            return DeferredJob(series, protocol, prep, list(plan.deferred),
+                               reported=[(r, None if pm is None else header_only(pm))
+                                         for r, pm in results])
         return None
 
     @staticmethod
@@ -301,29 +325,48 @@ class Processor:
     def _reports(self, series: AssembledSeries, protocol: Protocol, prep: pipeline.Prepared,
                  results: list[tuple[pipeline.MethodResult, Dataset | None]],
                  figures: QcFigures, reasons: list[QcReason], clock: SeriesClock,
-                 outcome: SeriesOutcome) -> None:
+                 outcome: SeriesOutcome, *, deferred: list[str] | None = None) -> None:
         """The per-series outputs (SR, summary page, Segmentation) from every model-free map,
-        sent after the per-method outputs so they never delay the primary."""
-        kinds = [k for k in REPORT_BUILDERS if k in protocol.outputs]
+        sent after the per-method outputs so they never delay the primary.
+
+        With ``deferred`` (the fits of the deferred pass, which ``results`` ends with) it is
+        the deferred pass's report: an SR and a summary page covering every map of
+        ``results`` in a series of their own (SeriesDescription ``... incl. deferred``;
+        ``deferred maps`` when the job was resumed after a restart and holds only the fits).
+        Its series UID names the maps it covers, so a report of other content never reuses
+        a UID. The first report stays as sent; the Segmentation is not repeated (its region
+        is of the first map, which the fits do not change).
+        """
+        kinds = [k for k in REPORT_BUILDERS if k in protocol.outputs
+                 and (deferred is None or k != "segmentation")]
         if not kinds or not results or not prep.mask.any():
             return
         source_uid = str(series.references[0].SeriesInstanceUID)
         source_number = series.references[0].get("SeriesNumber")
+        names = [r.name for r, _ in results]
+        if deferred is None:
+            what, extra = "report", ""
+        else:
+            what = "report-deferred:" + ",".join(names)
+            extra = "incl. deferred" if len(names) > len(deferred) else "deferred maps"
+        note = " ".join(x for x in (extra, "" if series.complete else "incomplete series") if x)
         datasets: list[Dataset] = []
-        for kind in kinds:
+        for i, kind in enumerate(kinds):
+            number = output_series_number(source_number, "report", kind)
             req = ReportRequest(
                 references=series.references,
                 maps={r.name: (r.title, r.unit_ucum, r.values) for r, _ in results},
                 mask=prep.mask,
-                series_uid=output_series_uid(source_uid, "report", kind),
-                series_number=output_series_number(source_number, "report", kind),
+                series_uid=output_series_uid(source_uid, what, kind),
+                # the first report's number, and the next ones for the deferred report
+                series_number=number if deferred is None else number + 1 + i,
                 m0=prep.m0,
                 qc=figures,
                 qc_reasons=reasons,
                 parametric_maps={r.name: pm for r, pm in results if pm is not None},
                 display_ranges={r.name: pipeline.display_range(r.values) for r, _ in results},
                 candidate_n_sd=protocol.qc.candidate_n_sd,
-                note="" if series.complete else "incomplete series",
+                note=note,
             )
             with clock.stage(f"build:report:{kind}"):
                 datasets.extend(REPORT_BUILDERS[kind](req))

@@ -35,7 +35,7 @@ from pydicom import Dataset
 
 from node.derive import mr, pm, sc, seg, sr, summary
 from node.derive.report import ReportRequest, qc_note
-from node.derive.request import RESEARCH_MARKER, DerivedRequest, output_uid
+from node.derive.request import RESEARCH_MARKER, DerivedRequest, header_only, output_uid
 
 Builder = Callable[[DerivedRequest], list[Dataset]]
 
@@ -54,4 +54,4 @@ REPORT_BUILDERS: dict[str, ReportBuilder] = {
 }
 
 __all__ = ["BUILDERS", "REPORT_BUILDERS", "RESEARCH_MARKER", "Builder", "DerivedRequest",
-           "ReportBuilder", "ReportRequest", "output_uid", "qc_note"]
+           "ReportBuilder", "ReportRequest", "header_only", "output_uid", "qc_note"]

@@ -124,6 +124,15 @@ def source_image_item(ref: Dataset) -> Dataset:
     return item
 
 
+def header_only(ds: Dataset) -> Dataset:
+    """A shallow copy of a built object without its pixel data (group 7FE0: Pixel Data,
+    Float and Double Float Pixel Data), e.g. a Parametric Map an SR cites by UID later."""
+    out = Dataset({t: e for t, e in ds._dict.items() if t.group != 0x7FE0})
+    if hasattr(ds, "file_meta"):
+        out.file_meta = ds.file_meta
+    return out
+
+
 def frame_of(ref: Dataset) -> tuple[Dataset, int] | None:
     """``(instance header, frame number)`` when ``ref`` is a view of one frame of a
     multi-frame instance (it carries ``.multiframe`` and ``.frame_number``, as
