@@ -498,7 +498,7 @@ def multi_lorentzian(
     *,
     pools: tuple[Pool, ...] = POOLS_5,
     apt_pool: str = "amide",
-    init: str = "mean",
+    init: str = "table",
     neighbourhood: int = 3,
     max_iter: int = 100,
     rms_limit: float | None = None,
@@ -520,10 +520,12 @@ def multi_lorentzian(
         Pool table; the first must be water. Default :data:`POOLS_5`.
     apt_pool : str
         Pool whose amplitude is ``.map``.
-    init : {'mean', 'table', 'neighbourhood'}
-        ``'mean'`` (default): start from a fit of the image's mean spectrum (water from each
-        spectrum's minimum; see :func:`initial_params`).
-        ``'table'``: start from the pool table (water from the spectrum's minimum).
+    init : {'table', 'mean', 'neighbourhood'}
+        ``'table'`` (default): start from the pool table (water from the spectrum's minimum).
+        ``'mean'``: start from a fit of the mean spectrum of the voxels passed (water from each
+        spectrum's minimum; see :func:`initial_params`); fewer voxels end in a local minimum on
+        a bound, but a voxel's start then depends on the others passed with it, so the node's
+        chunked deferred pass keeps ``'table'``.
         ``'neighbourhood'``: first fit the spectra averaged over a ``neighbourhood`` x
         ``neighbourhood`` in-plane window, then start each voxel's own fit there (the remedy
         for noisy voxels; needs two spatial axes). Each voxel's result is still its own fit.
@@ -666,7 +668,7 @@ def lda(
         Include the broad MT Lorentzian in the reference (needs offsets beyond the band).
     init, neighbourhood, max_iter, rms_limit, noise_sigma
         As in :func:`multi_lorentzian` (the residual gate counts the fitted offsets only), but
-        ``init`` defaults to ``'table'`` (the two-pool reference has no solute lines to trap).
+        ``init`` defaults to ``'table'``.
 
     Returns
     -------
@@ -731,7 +733,7 @@ def lda(
 # ----------------------------------------------------------------------------------------------
 # registry entries (model-based: the scheduler defers them). Maps in % of M0 like the
 # model-free measures; cost per voxel measured by tests/bench/bench_fits.py (SNR 60, 61 offsets,
-# one core: multi_lorentzian with init='mean' 10-11 s per 128 x 128 at the least load seen, lda 1.5e-4).
+# one core: multi_lorentzian init='table' 8-15 s per 128 x 128 under the load seen, lda 1.5e-4).
 
 
 def _lda_percent(z, offsets_ppm, *, t1_s=None):
@@ -755,7 +757,7 @@ def _register() -> None:
         register(
             MethodInfo(
                 "multi_lorentzian", "Amide amplitude, 5-pool Lorentzian fit", "%", False, False,
-                6.5e-4, _multi_lorentzian_percent, needs_b0=False,
+                6e-4, _multi_lorentzian_percent, needs_b0=False,
             )
         )
 

@@ -73,13 +73,13 @@ def bench_lorentz(n_side=128, sample=100, runs=5):
     z = z_model(x, p) + rng.normal(0.0, 1 / 60, (v, x.size))
     zi = z.reshape(n_side, n_side, x.size)
 
-    t_b, res, times_b = _median_time(lambda: multi_lorentzian(zi, x), runs)
+    t_b, res, times_b = _median_time(lambda: multi_lorentzian(zi, x, init="mean"), runs)
     rms_b = res.rms.reshape(-1)
 
     _, start, lo, hi = _param_layout(POOLS_5)
-    # the same start values for the baseline: the batched method's own policy (init='mean':
-    # a fit of the image-mean spectrum, water line per voxel), computed once; its time counts
-    # on the batched side only
+    # the same start values for the baseline: the batched run's policy (init='mean': a fit of
+    # the image-mean spectrum, water line per voxel), computed once; its time counts on the
+    # batched side only
     p0 = initial_params(z, x, np.ones(x.size), start, lo, hi, (v,), "mean")
 
     def f(_x, *q):
