@@ -68,6 +68,8 @@ __all__ = [
     "install",
     "parse_dataset",
     "parse_store_command",
+    "part10_prefix_and_meta",
+    "scan_dataset",
     "supported",
 ]
 
@@ -118,6 +120,22 @@ def _elem_explicit(tag: int, vr: bytes, value: bytes) -> bytes:
     return struct.pack("<HH2sH", tag >> 16, tag & 0xFFFF, vr, len(value)) + value
 
 
+def _meta_elements(sop_class_uid: str, sop_instance_uid: str, transfer_syntax_uid: str,
+                   implementation_class_uid: str, implementation_version: str
+                   ) -> list[tuple[int, bytes, bytes]]:
+    uid = lambda s: _even(s.encode("ascii"), b"\x00")  # noqa: E731
+    body = [
+        (0x00020001, b"OB", b"\x00\x01"),
+        (0x00020002, b"UI", uid(sop_class_uid)),
+        (0x00020003, b"UI", uid(sop_instance_uid)),
+        (0x00020010, b"UI", uid(transfer_syntax_uid)),
+        (0x00020012, b"UI", uid(implementation_class_uid)),
+        (0x00020013, b"SH", _even(implementation_version.encode("ascii"), b" ")),
+    ]
+    length = sum(len(v) + (12 if vr == b"OB" else 8) for _, vr, v in body)
+    return [(0x00020000, b"UL", struct.pack("<L", length)), *body]
+
+
 def encode_part10_prefix(sop_class_uid: str, sop_instance_uid: str, transfer_syntax_uid: str,
                          *, implementation_class_uid: str, implementation_version: str) -> bytes:
     """Preamble, ``DICM`` and File Meta Information of a PS3.10 file (PS3.10 7.1).
@@ -127,17 +145,32 @@ def encode_part10_prefix(sop_class_uid: str, sop_instance_uid: str, transfer_syn
     TransferSyntaxUID, ImplementationClassUID, ImplementationVersionName: the same elements,
     in the same encoding, as pynetdicom's ``create_file_meta`` written by pydicom (tested).
     """
-    uid = lambda s: _even(s.encode("ascii"), b"\x00")  # noqa: E731
-    body = b"".join((
-        _elem_explicit(0x00020001, b"OB", b"\x00\x01"),
-        _elem_explicit(0x00020002, b"UI", uid(sop_class_uid)),
-        _elem_explicit(0x00020003, b"UI", uid(sop_instance_uid)),
-        _elem_explicit(0x00020010, b"UI", uid(transfer_syntax_uid)),
-        _elem_explicit(0x00020012, b"UI", uid(implementation_class_uid)),
-        _elem_explicit(0x00020013, b"SH", _even(implementation_version.encode("ascii"), b" ")),
-    ))
-    return (b"\x00" * 128 + b"DICM" + _elem_explicit(0x00020000, b"UL",
-                                                      struct.pack("<L", len(body))) + body)
+    return part10_prefix_and_meta(
+        sop_class_uid, sop_instance_uid, transfer_syntax_uid,
+        implementation_class_uid=implementation_class_uid,
+        implementation_version=implementation_version)[0]
+
+
+def part10_prefix_and_meta(sop_class_uid: str, sop_instance_uid: str,
+                           transfer_syntax_uid: str, *, implementation_class_uid: str,
+                           implementation_version: str) -> tuple[bytes, FileMetaDataset]:
+    """:func:`encode_part10_prefix` and the same file meta as a FileMetaDataset of raw
+    elements (what :func:`file_meta_from_prefix` reads back from it, without reading)."""
+    elems = _meta_elements(sop_class_uid, sop_instance_uid, transfer_syntax_uid,
+                           implementation_class_uid, implementation_version)
+    parts = [b"\x00" * 128, b"DICM"]
+    raw: dict[BaseTag, RawDataElement] = {}
+    pos = 0  # offsets within the group, as file_meta_from_prefix gives them
+    for number, vr, value in elems:
+        head = _elem_explicit(number, vr, value)
+        parts.append(head)
+        pos += len(head) - len(value)
+        tag = _TAGS.get(number) or BaseTag(number)
+        raw[tag] = RawDataElement(tag, _VR_TEXT[vr], len(value), value, pos, False, True)
+        pos += len(value)
+    meta = FileMetaDataset(raw)
+    meta.set_original_encoding(False, True)
+    return b"".join(parts), meta
 
 
 _ENCODED_VR = frozenset(
@@ -151,38 +184,69 @@ _EXPLICIT_HEAD = struct.Struct("<HH2sH")
 _U32 = struct.Struct("<L")
 
 
-def _scan_explicit_le(data: bytes) -> dict[BaseTag, RawDataElement] | None:
-    """Raw elements of an Explicit VR Little Endian data set, or None when not simple.
+_TAGS: dict[int, BaseTag] = {}  # BaseTag per tag number seen (a few hundred at most)
+_SCAN_ONE = (None, False)
+
+
+def _scan_explicit_le(data: bytes) -> tuple[dict[BaseTag, RawDataElement] | None, bool]:
+    """(raw elements of an Explicit VR Little Endian data set, whether one is a sequence), or
+    (None, False) when the data set is not simple.
 
     Simple means: every VR is a known one, every length is defined, no item delimiter at the
     top level, and the elements end exactly at the end of the data. Anything else is left to
-    pydicom's parser.
+    pydicom's parser. Sequences of defined length are kept raw, not walked.
     """
     out: dict[BaseTag, RawDataElement] = {}
     pos, end = 0, len(data)
     unpack, u32 = _EXPLICIT_HEAD.unpack_from, _U32.unpack_from
+    known, long_vr, vr_text, tags = _ENCODED_VR, _LONG_VR, _VR_TEXT, _TAGS
+    new_raw = RawDataElement
+    has_sq = False
     while pos < end:
         if end - pos < 8:
-            return None
+            return _SCAN_ONE
         group, elem, vr_b, length = unpack(data, pos)
-        if vr_b not in _ENCODED_VR:
-            return None
+        if vr_b not in known or group == 0xFFFE:
+            return _SCAN_ONE
         pos += 8
-        if vr_b in _LONG_VR:
+        if vr_b in long_vr:
             if end - pos < 4:
-                return None
+                return _SCAN_ONE
             length = u32(data, pos)[0]
             pos += 4
+            if vr_b == b"SQ":
+                has_sq = True
         if length == 0xFFFFFFFF or pos + length > end:
-            return None
-        tag = group << 16 | elem
-        if group == 0xFFFE:
-            return None
-        vr = _VR_TEXT[vr_b]
+            return _SCAN_ONE
+        number = group << 16 | elem
+        tag = tags.get(number)
+        if tag is None:
+            tag = BaseTag(number)
+            if len(tags) < 4096:
+                tags[number] = tag
+        vr = vr_text[vr_b]
         value = data[pos:pos + length] if length else empty_value_for_VR(vr, raw=True)
-        out[BaseTag(tag)] = RawDataElement(BaseTag(tag), vr, length, value, pos, False, True)
+        out[tag] = new_raw(tag, vr, length, value, pos, False, True)
         pos += length
-    return out
+    return out, has_sq
+
+
+def scan_dataset(data: bytes | bytearray | memoryview, transfer_syntax_uid: str
+                 ) -> tuple[Dataset, bool]:
+    """:func:`parse_dataset`, and whether the data set's framing is known whole: True when
+    the fast scanner read every element to the exact end and none is a sequence (the caller
+    must still check the framing of anything else; pydicom decodes truncation silently)."""
+    implicit = str(transfer_syntax_uid) == str(ImplicitVRLittleEndian)
+    raw, has_sq = (None, False) if implicit else _scan_explicit_le(
+        data if isinstance(data, bytes) else bytes(data))
+    if raw is None:
+        return read_dataset(BytesIO(data), implicit, True), False
+    ds = Dataset(raw, parent_encoding=default_encoding)
+    cs = raw.get(BaseTag(0x00080005))
+    encoding: Any = (convert_encodings(convert_raw_data_element(cs).value)
+                     if cs is not None else default_encoding)
+    ds.set_original_encoding(False, True, encoding)
+    return ds, not has_sq
 
 
 def parse_dataset(data: bytes, transfer_syntax_uid: str) -> Dataset:
@@ -192,21 +256,12 @@ def parse_dataset(data: bytes, transfer_syntax_uid: str) -> Dataset:
     four times faster than pydicom's reader, same elements, values, offsets and encoding;
     tested); anything else goes through :func:`pydicom.filereader.read_dataset`.
     """
-    implicit = str(transfer_syntax_uid) == str(ImplicitVRLittleEndian)
-    raw = None if implicit else _scan_explicit_le(bytes(data))
-    if raw is None:
-        return read_dataset(BytesIO(data), implicit, True)
-    ds = Dataset(raw, parent_encoding=default_encoding)
-    cs = raw.get(BaseTag(0x00080005))
-    encoding: Any = (convert_encodings(convert_raw_data_element(cs).value)
-                     if cs is not None else default_encoding)
-    ds.set_original_encoding(False, True, encoding)
-    return ds
+    return scan_dataset(data, transfer_syntax_uid)[0]
 
 
 def file_meta_from_prefix(prefix: bytes) -> FileMetaDataset:
     """The FileMetaDataset of a prefix made by :func:`encode_part10_prefix` (raw elements)."""
-    raw = _scan_explicit_le(prefix[132:])
+    raw = _scan_explicit_le(prefix[132:])[0]
     if raw is None:  # pragma: no cover - our own encoder's output is always simple
         raise ValueError("file meta: not a simple Explicit VR Little Endian group")
     meta = FileMetaDataset(raw)

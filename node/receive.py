@@ -37,6 +37,7 @@ import logging
 import shutil
 import socket
 import threading
+import time
 from collections.abc import Callable
 from typing import Any
 
@@ -80,6 +81,9 @@ STATUS_OUT_OF_RESOURCES = 0xA700
 STATUS_SOP_MISMATCH = 0xA900
 STATUS_CANNOT_UNDERSTAND = 0xC000
 STATUS_BAD_HEADER = 0xC001
+
+FREE_SPACE_RECHECK_S = 0.1
+"""Longest time between two measurements of the spool's free space (``min_free_mb``)."""
 
 STORAGE_CLASSES = (MRImageStorage, EnhancedMRImageStorage)
 """SOP classes the node accepts as Storage SCP."""
@@ -223,6 +227,7 @@ class Receiver:
         """Series key -> why it was flagged (refused or conflicting instances)."""
         self.on_status: Callable[[int], None] | None = None
         """Called with the status code of every C-STORE response (the node's metrics)."""
+        self._free = (-FREE_SPACE_RECHECK_S, 0.0, 0.0)  # (measured at, MiB free, MiB since)
 
     # ------------------------------------------------------------------ lifecycle
     def start(self) -> Receiver:
@@ -249,6 +254,7 @@ class Receiver:
             (evt.EVT_REJECTED, self._on_rejected),
         ]
         self.assembler.start()
+        self.spool.warm()
         self._server = ae.start_server((self.config.host, self.config.port), block=False,
                                        evt_handlers=handlers, ssl_context=ssl_context)
         self.port = int(self._server.server_address[1])
@@ -329,10 +335,7 @@ class Receiver:
     def _limits(self, ds: Dataset, key: str) -> Dataset | None:
         """0xA700 when the spool is short of space or the instance is beyond a size limit."""
         cfg = self.config
-        try:
-            free_mb = shutil.disk_usage(self.spool.root).free / 2**20
-        except OSError:
-            free_mb = 0.0
+        free_mb = self._free_mb()
         if free_mb < cfg.min_free_mb:
             log.error("series %s: instance refused, spool has %.0f MiB free, below "
                       "min_free_mb %g", key, free_mb, cfg.min_free_mb)
@@ -351,6 +354,26 @@ class Receiver:
             log.warning("series %s: instance refused: %s", key, problem)
             return _status(STATUS_OUT_OF_RESOURCES, problem)
         return None
+
+    def _free_mb(self) -> float:
+        """Free space of the spool's file system in MiB: measured at most every
+        :data:`FREE_SPACE_RECHECK_S`, less what the spool has written since (an instance
+        is far smaller than any sane ``min_free_mb``, so the estimate errs on the safe side
+        between measurements)."""
+        now = time.monotonic()
+        checked, free, written = self._free
+        if now - checked >= FREE_SPACE_RECHECK_S:
+            try:
+                free = shutil.disk_usage(self.spool.root).free / 2**20
+            except OSError:
+                free = 0.0
+            self._free = (now, free, 0.0)
+            return free
+        return free - written
+
+    def _wrote(self, n_bytes: int) -> None:
+        checked, free, written = self._free
+        self._free = (checked, free, written + n_bytes / 2**20)
 
     def _same_as_stored(self, prep: Any, path: Any) -> bool:
         """Whether a re-sent instance places the same frames as the copy in the spool."""
@@ -407,14 +430,12 @@ class Receiver:
         """
         implicit = ts == str(ImplicitVRLittleEndian)
         try:
-            ds = fastpath.parse_dataset(data, ts)
+            ds, framed = fastpath.scan_dataset(data, ts)
         except Exception as exc:
-            ds, parse_error = None, exc
+            ds, framed, parse_error = None, False, exc
         # a data set the fast scanner read whole, without sequences, is known to be framed
         # right; anything else gets the full walk (pydicom decodes truncation silently)
-        simple = (ds is not None and not implicit
-                  and all(getattr(e, "VR", None) != "SQ" for e in ds._dict.values()))
-        if not simple:
+        if not framed:
             try:
                 broken = framing_problem(data, implicit=implicit)
             except Exception as exc:
@@ -427,10 +448,9 @@ class Receiver:
             sop_class = str(ds.SOPClassUID)
             sop_uid = str(ds.SOPInstanceUID)
             study_uid, series_uid = str(ds.StudyInstanceUID), str(ds.SeriesInstanceUID)
-            prefix = fastpath.encode_part10_prefix(
+            prefix, ds.file_meta = fastpath.part10_prefix_and_meta(
                 sop_class, sop_uid, ts, implementation_class_uid=PYNETDICOM_IMPLEMENTATION_UID,
                 implementation_version=PYNETDICOM_IMPLEMENTATION_VERSION)
-            ds.file_meta = fastpath.file_meta_from_prefix(prefix)
         except Exception as exc:  # any parse error is the peer's data, never our crash
             log.warning("C-STORE: unparsable data set (%s)", type(exc).__name__)
             return STATUS_CANNOT_UNDERSTAND, f"unparsable data set: {type(exc).__name__}"
@@ -465,6 +485,7 @@ class Receiver:
                 expected = prep.protocol.expected_count(prep.images_in_acquisition)
                 self.spool.store(key, sop_uid, (prefix, data),
                                  protocol=prep.protocol.name, expected=expected)
+                self._wrote(len(prefix) + len(data))
             except SpoolError as exc:
                 log.error("%s", exc)
                 return STATUS_OUT_OF_RESOURCES, "cannot write the instance to the spool"

@@ -130,6 +130,36 @@ def test_parse_dataset_equals_pydicom_reader():
     assert imp.SOPInstanceUID == ds.SOPInstanceUID
 
 
+def test_scan_dataset_says_when_the_framing_is_known_whole():
+    # the receiver skips its own framing walk only for what the fast scanner read to the
+    # exact end without a sequence (PS3.5 7.1: defined-length elements, 7.5: sequences)
+    ds = series_from_arrays(np.ones((1, 4, 4, 2), np.float32), [-300.0, 3.5])[1]
+    ts = str(ExplicitVRLittleEndian)
+    plain = encode(ds, False, True)
+    got, framed = fastpath.scan_dataset(plain, ts)
+    assert framed and got.SOPInstanceUID == ds.SOPInstanceUID
+    assert fastpath.scan_dataset(bytearray(plain), ts)[1]
+    assert not fastpath.scan_dataset(plain[:-3], ts)[1]  # a cut value: pydicom's reader
+    assert not fastpath.scan_dataset(encode(ds, True, True), str(ImplicitVRLittleEndian))[1]
+    ds.ReferencedImageSequence = Sequence([Dataset()])
+    ds.ReferencedImageSequence[0].ReferencedSOPInstanceUID = UID_INST
+    got, framed = fastpath.scan_dataset(encode(ds, False, True), ts)  # a sequence
+    assert not framed
+    assert got.ReferencedImageSequence[0].ReferencedSOPInstanceUID == UID_INST
+
+
+def test_prefix_and_meta_equal_the_prefix_read_back():
+    for ts in (ExplicitVRLittleEndian, ImplicitVRLittleEndian):
+        kw = {"implementation_class_uid": PYNETDICOM_IMPLEMENTATION_UID,
+              "implementation_version": PYNETDICOM_IMPLEMENTATION_VERSION}
+        prefix, meta = fastpath.part10_prefix_and_meta(UID_CLASS, UID_INST, str(ts), **kw)
+        assert prefix == fastpath.encode_part10_prefix(UID_CLASS, UID_INST, str(ts), **kw)
+        back = fastpath.file_meta_from_prefix(prefix)
+        assert isinstance(meta, FileMetaDataset)
+        assert _raw_view(meta) == _raw_view(back)
+        assert meta.TransferSyntaxUID == ts and meta.MediaStorageSOPInstanceUID == UID_INST
+
+
 def test_supported_names_the_version():
     ok, why = fastpath.supported()
     assert ok, why  # pyproject pins pynetdicom to the tested range
