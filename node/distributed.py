@@ -100,13 +100,8 @@ def _fit_chunk(name: str, z: np.ndarray, z_uncorrected: np.ndarray | None,
                offsets_ppm: np.ndarray, t1_s: np.ndarray | None,
                saturation: dict[str, float]) -> np.ndarray:
     """On a worker: one method on one chunk of voxels ``(n, n_offsets)``, via the pipeline."""
-    n = z.shape[0]
-    chunk = pipeline.Prepared(
-        z=z, offsets_ppm=offsets_ppm, m0=np.ones(n, dtype=z.dtype),
-        mask=np.ones(n, dtype=bool), shift_ppm=np.zeros(n, dtype=z.dtype),
-        valid=np.ones(n, dtype=bool), seconds={}, z_uncorrected=z_uncorrected,
-        saturation=saturation,
-    )
+    chunk = pipeline.Prepared.of_voxels(z, offsets_ppm, z_uncorrected=z_uncorrected,
+                                        saturation=saturation)
     return pipeline.compute(chunk, name, t1_s=t1_s).values
 
 
@@ -170,17 +165,15 @@ class DaskEngine:
         tasks: dict[Any, tuple[int, str, np.ndarray]] = {}
         for i, job in jobs:
             prep = job.prep
-            idx = np.flatnonzero(prep.mask.ravel())
-            flat = prep.z.reshape(-1, prep.z.shape[-1])
-            flat_u = (None if prep.z_uncorrected is None
-                      else prep.z_uncorrected.reshape(-1, prep.z.shape[-1]))
+            idx = prep.index
+            flat, flat_u = prep.zv, prep.zv_uncorrected
             for name in job.methods:
                 for start in range(0, idx.size, self.chunk_voxels):
-                    sel = idx[start:start + self.chunk_voxels]
+                    part = slice(start, start + self.chunk_voxels)
                     fut = self.client.submit(
-                        _fit_chunk, name, flat[sel], None if flat_u is None else flat_u[sel],
+                        _fit_chunk, name, flat[part], None if flat_u is None else flat_u[part],
                         prep.offsets_ppm, None, prep.saturation, pure=False)
-                    tasks[fut] = (i, name, sel)
+                    tasks[fut] = (i, name, idx[part])
         results: dict[tuple[int, str], np.ndarray] = {}
         for i, job in jobs:
             for name in job.methods:

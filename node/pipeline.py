@@ -40,18 +40,23 @@ class FrameMotion:
 class Prepared:
     """The Z-spectra of a series after normalisation and B0 correction.
 
-    ``z`` is ``(slices, rows, cols, n_sat)`` with NaN outside the brain mask and where the B0
-    shift could not be corrected; ``offsets_ppm`` are sorted; ``m0`` is the reference image.
+    The spectra are kept for the brain voxels only: ``zv`` is ``(n_voxels, n_sat)``, row ``i``
+    the voxel at flat index ``index[i]`` of the ``(slices, rows, cols)`` volume (``index`` is
+    ``flatnonzero(mask)``), NaN where the B0 shift could not be corrected; ``offsets_ppm`` are
+    sorted; ``m0`` is the reference image. :attr:`z` gives the whole volume (NaN outside the
+    mask), built on first use: the methods work on ``zv`` and never need it.
     """
 
-    z: np.ndarray
+    zv: np.ndarray
+    index: np.ndarray
     offsets_ppm: np.ndarray
     m0: np.ndarray
     mask: np.ndarray
     shift_ppm: np.ndarray
     valid: np.ndarray
     seconds: dict[str, float]
-    z_uncorrected: np.ndarray | None = None
+    zv_uncorrected: np.ndarray | None = None
+    """``zv`` before the B0 correction (the methods that model the water line take it)."""
     saturation: dict[str, float] = field(default_factory=dict)
     t1_s: np.ndarray | None = None
     """T1 (s) per voxel from a T1 companion, NaN where unknown; None without one."""
@@ -65,6 +70,41 @@ class Prepared:
     """``"internal"`` (estimated from the Z-spectra) or ``"wassr"``."""
     m0_source: str = "series"
     """``"series"`` (the series' own M0 frames) or ``"companion"``."""
+    _volumes: dict[str, np.ndarray] = field(default_factory=dict, repr=False, compare=False)
+
+    @classmethod
+    def of_voxels(cls, z: np.ndarray, offsets_ppm: np.ndarray, *,
+                  z_uncorrected: np.ndarray | None = None,
+                  saturation: dict[str, float] | None = None) -> Prepared:
+        """Spectra ``(n, n_sat)`` taken as they are (every voxel valid, no shift): a chunk of
+        voxels on a worker (:mod:`node.distributed`)."""
+        n = z.shape[0]
+        return cls(zv=z, index=np.arange(n), offsets_ppm=offsets_ppm,
+                   m0=np.ones(n, dtype=z.dtype), mask=np.ones(n, dtype=bool),
+                   shift_ppm=np.zeros(n, dtype=z.dtype), valid=np.ones(n, dtype=bool),
+                   seconds={}, zv_uncorrected=z_uncorrected, saturation=dict(saturation or {}))
+
+    def volume(self, rows: np.ndarray) -> np.ndarray:
+        """Per-voxel rows ``(n_voxels, ...)`` scattered into the volume, NaN elsewhere."""
+        out = np.full((self.mask.size, *rows.shape[1:]), np.nan, dtype=rows.dtype)
+        out[self.index] = rows
+        return out.reshape(*self.mask.shape, *rows.shape[1:])
+
+    @property
+    def z(self) -> np.ndarray:
+        """``(slices, rows, cols, n_sat)`` B0-corrected spectra, NaN outside the mask."""
+        if "z" not in self._volumes:
+            self._volumes["z"] = self.volume(self.zv)
+        return self._volumes["z"]
+
+    @property
+    def z_uncorrected(self) -> np.ndarray | None:
+        """:attr:`z` before the B0 correction (None when not kept)."""
+        if self.zv_uncorrected is None:
+            return None
+        if "zu" not in self._volumes:
+            self._volumes["zu"] = self.volume(self.zv_uncorrected)
+        return self._volumes["zu"]
 
 
 @dataclass
@@ -132,19 +172,31 @@ def prepare(
                              res.max_displacement_mm)
         seconds["motion"] = time.perf_counter() - t0
     t0 = time.perf_counter()
-    spec = quant.normalize(signal, offsets_ppm, m0=m0, m0_threshold_ppm=m0_threshold_ppm)
-    mask = quant.brain_mask(spec.m0)
-    z = np.where(mask[..., None], spec.z, np.nan).astype(spec.z.dtype, copy=False)
+    signal = np.asarray(signal)
+    ref = quant.m0_reference(signal, offsets_ppm, m0=m0, m0_threshold_ppm=m0_threshold_ppm)
+    mask = quant.brain_mask(ref)
+    index = np.flatnonzero(mask.ravel())
+    # only the brain voxels from here on: one gather, then every stage on (n_voxels, n)
+    rows = signal.reshape(-1, signal.shape[-1])[index]
+    spec = quant.normalize(rows, offsets_ppm, m0=ref.reshape(-1)[index],
+                           m0_threshold_ppm=m0_threshold_ppm)
+    zv = spec.z
     t1 = time.perf_counter()
     seconds["normalise"] = t1 - t0
     if b0_shift_ppm is None:
-        shift = quant.estimate_b0_shift(z, spec.offsets_ppm)
+        shift_v = quant.estimate_b0_shift(zv, spec.offsets_ppm)
+        shift = np.full(mask.shape, np.nan, dtype=zv.dtype)
+        shift.reshape(-1)[index] = shift_v
     else:
         shift = np.asarray(b0_shift_ppm)
-        if shift.shape != z.shape[:-1]:
+        if shift.shape != mask.shape:
             raise ValueError(f"b0_shift_ppm has shape {shift.shape}, the series "
-                             f"{z.shape[:-1]}")
-    b0 = quant.correct_b0(z, spec.offsets_ppm, shift_ppm=shift)
+                             f"{mask.shape}")
+        shift = shift.astype(zv.dtype, copy=False)
+        shift_v = shift.reshape(-1)[index]
+    b0 = quant.correct_b0(zv, spec.offsets_ppm, shift_ppm=shift_v)
+    valid = np.zeros(mask.shape, dtype=bool)
+    valid.reshape(-1)[index] = b0.valid
     seconds["b0"] = time.perf_counter() - t1
     b1_outside = None
     if b1_rel is not None:
@@ -156,8 +208,8 @@ def prepare(
     if t1_s is not None and np.shape(t1_s) != mask.shape:
         raise ValueError(f"t1_s has shape {np.shape(t1_s)}, the series {mask.shape}")
     return Prepared(
-        z=b0.z, offsets_ppm=spec.offsets_ppm, m0=spec.m0, mask=mask,
-        shift_ppm=b0.shift_ppm, valid=b0.valid, seconds=seconds, z_uncorrected=z,
+        zv=b0.z, index=index, offsets_ppm=spec.offsets_ppm, m0=ref, mask=mask,
+        shift_ppm=shift, valid=valid, seconds=seconds, zv_uncorrected=zv,
         saturation=dict(saturation or {}),
         t1_s=None if t1_s is None else np.asarray(t1_s, dtype=np.float32),
         b1_rel=b1_rel, b1_outside=b1_outside, motion=motion,
@@ -247,22 +299,20 @@ def compute(
     info = METHODS[name]
     if t1_s is None:
         t1_s = prep.t1_s
-    z = prep.z if info.needs_b0 or prep.z_uncorrected is None else prep.z_uncorrected
+    zv = prep.zv if info.needs_b0 or prep.zv_uncorrected is None else prep.zv_uncorrected
+    t1_v = None if t1_s is None else np.asarray(t1_s).reshape(-1)[prep.index]
     t0 = time.perf_counter()
     if chunk_voxels is None:
-        values = _call(info, z, prep.offsets_ppm, t1_s, prep.saturation)
+        rows = _call(info, zv, prep.offsets_ppm, t1_v, prep.saturation)
     else:
-        idx = np.flatnonzero(prep.mask.ravel())
-        flat = z.reshape(-1, z.shape[-1])
-        t1_flat = None if t1_s is None else np.asarray(t1_s).reshape(-1)
-        out = np.full(flat.shape[0], np.nan, dtype=np.float32)
-        for start in range(0, idx.size, chunk_voxels):
-            if between_chunks is not None and not between_chunks(start, idx.size):
-                raise Abandoned(f"{name} abandoned after {start} of {idx.size} voxels")
-            sel = idx[start:start + chunk_voxels]
-            out[sel] = _call(info, flat[sel], prep.offsets_ppm,
-                             None if t1_flat is None else t1_flat[sel], prep.saturation)
-        values = out.reshape(z.shape[:-1])
+        rows = np.full(zv.shape[0], np.nan, dtype=np.float32)
+        for start in range(0, zv.shape[0], chunk_voxels):
+            if between_chunks is not None and not between_chunks(start, zv.shape[0]):
+                raise Abandoned(f"{name} abandoned after {start} of {zv.shape[0]} voxels")
+            end = start + chunk_voxels
+            rows[start:end] = _call(info, zv[start:end], prep.offsets_ppm,
+                                    None if t1_v is None else t1_v[start:end], prep.saturation)
+    values = prep.volume(rows)
     seconds = time.perf_counter() - t0
     return MethodResult(
         name=name, title=info.title, unit_ucum=info.unit_ucum, values=values,

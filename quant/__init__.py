@@ -24,7 +24,7 @@ from quant.bmfit import aptr_star  # noqa: F401  (model-based; not registered: n
 from quant.lorentz import lda, multi_lorentzian  # noqa: F401  (registers 'lda', 'multi_lorentzian')
 from quant.measures import apt_star, arex, mtr_asym, mtr_asym_t1, z_at
 from quant.registry import METHODS, PRIMARY_METHOD, MethodInfo, get_method, register
-from quant.spectra import Spectrum, brain_mask, normalize, sort_offsets
+from quant.spectra import Spectrum, brain_mask, m0_reference, normalize, sort_offsets
 
 __all__ = [
     "B0Result",
@@ -40,6 +40,7 @@ __all__ = [
     "estimate_b0_shift",
     "get_method",
     "lda",
+    "m0_reference",
     "mtr_asym",
     "mtr_asym_t1",
     "multi_lorentzian",

@@ -14,7 +14,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-__all__ = ["Spectrum", "as_float", "check_offsets", "normalize", "sort_offsets", "brain_mask"]
+__all__ = ["Spectrum", "as_float", "brain_mask", "check_offsets", "m0_reference", "normalize",
+           "sort_offsets"]
 
 
 def as_float(a: ArrayLike, name: str = "signal") -> NDArray[np.floating]:
@@ -127,6 +128,35 @@ def normalize(
     ([[0.8, 0.5]], [-3.5, 3.5])
     """
     sig = as_float(signal)
+    off, ref = _reference(sig, offsets_ppm, m0, m0_threshold_ppm)
+    sat_idx = np.flatnonzero(~(np.abs(off) >= m0_threshold_ppm))
+    z, uo = _sorted(sig, off, sat_idx)
+    with np.errstate(divide="ignore"):
+        inv = np.where(ref > 0, 1.0 / np.where(ref > 0, ref, 1), np.nan).astype(sig.dtype, copy=False)
+    z *= inv[..., None]
+    return Spectrum(z=z, offsets_ppm=uo, m0=ref)
+
+
+def m0_reference(
+    signal: ArrayLike,
+    offsets_ppm: ArrayLike,
+    *,
+    m0: ArrayLike | None = None,
+    m0_threshold_ppm: float = 20.0,
+) -> NDArray[np.floating]:
+    """The reference image :func:`normalize` divides by: ``m0`` when given, else the mean of
+    the M0 frames (|offset| >= ``m0_threshold_ppm``), checked as :func:`normalize` checks it.
+
+    With it a caller can mask first and normalise only the voxels it keeps (passing their
+    reference as ``m0``), and gets the same values per voxel as :func:`normalize` on the
+    whole array.
+    """
+    return _reference(as_float(signal), offsets_ppm, m0, m0_threshold_ppm)[1]
+
+
+def _reference(
+    sig: NDArray[np.floating], offsets_ppm: ArrayLike, m0: ArrayLike | None, m0_threshold_ppm: float
+) -> tuple[NDArray[np.float64], NDArray[np.floating]]:
     if sig.ndim < 1:
         raise ValueError("signal must have an offset axis (its last axis)")
     off = check_offsets(offsets_ppm, sig.shape[-1], "signal")
@@ -151,11 +181,7 @@ def normalize(
         raise ValueError("M0 contains NaN or infinite values")
     if not np.any(ref > 0):
         raise ValueError("M0 is zero (or negative) everywhere")
-    z, uo = _sorted(sig, off, sat_idx)
-    with np.errstate(divide="ignore"):
-        inv = np.where(ref > 0, 1.0 / np.where(ref > 0, ref, 1), np.nan).astype(sig.dtype, copy=False)
-    z *= inv[..., None]
-    return Spectrum(z=z, offsets_ppm=uo, m0=ref)
+    return off, ref
 
 
 def brain_mask(m0: ArrayLike, *, fraction: float = 0.25, percentile: float = 99.0) -> NDArray[np.bool_]:
