@@ -3,20 +3,22 @@ send state per destination until the destination acknowledges it or the retry ti
 
 Flow of one batch (:meth:`Outbox.put`, then a send, then :meth:`Outbox.record`):
 
-1. Each object is written to ``spool_dir/outbox/<series key>/<SOP Instance UID>.dcm``
-   (temporary file and ``os.replace``, so a file is whole or absent). The files are **not**
-   fsync'd: they survive a killed process (the page cache belongs to the kernel), and after a
-   power loss an output whose file is lost or torn is rebuilt from the spooled instances,
-   which are fsync'd (:meth:`Outbox.missing` tells which series; the node reprocesses them).
-   Their UIDs are deterministic (:func:`node.service.output_series_uid`,
-   :func:`node.derive.output_uid`), so the rebuilt object is the same object.
-2. One transaction adds a row per object to ``outputs`` and a row per (object, destination) to
-   ``sends`` in state ``pending``, and claims for sending (``sending``) every row of the batch
-   not yet ``sent``. Objects already known (a rebuild after a crash) keep their send state:
-   what a destination acknowledged is never sent to it again.
-3. After the send, one transaction records each object's outcome: ``sent`` (success or warning
+1. One transaction adds a row per object to ``outputs`` and a row per (object, destination)
+   to ``sends`` in state ``pending``, and claims for sending (``sending``) every row of the
+   batch not yet ``sent``. Objects already known (a rebuild after a crash) keep their send
+   state: what a destination acknowledged is never sent to it again. Nothing is written to a
+   file yet: the send goes from memory, so the outbox costs one transaction before it.
+2. After the send, one transaction records each object's outcome: ``sent`` (success or warning
    status), ``failed`` (a status that would fail the same way again: PS3.7 0xA9xx, 0xCxxx, ...),
-   or ``retrying`` with the time of the next attempt.
+   or ``retrying`` with the time of the next attempt; each object that is not ``sent`` is then
+   written to ``spool_dir/outbox/<series key>/<SOP Instance UID>.dcm`` (temporary file and
+   ``os.replace``, so a file is whole or absent) for the retries.
+3. An object whose row exists but whose file does not (the process was killed between 1 and 2,
+   or a power cut lost the unsynced file) is rebuilt from the spooled instances, which are
+   durable: the worker finds the file missing and the node processes the series again
+   (:meth:`OutboxWorker.run_due`, ``on_missing``). Output UIDs are deterministic
+   (:func:`node.service.output_series_uid`, :func:`node.derive.output_uid`), so the rebuilt
+   object is the same object. The files are **not** fsync'd, for the same reason.
 
 Send states: ``pending`` -> ``sending`` -> ``sent`` | ``retrying`` | ``failed``;
 ``retrying`` -> ``sending`` when due. On start (:meth:`Outbox.resume`) ``pending`` and
@@ -174,13 +176,14 @@ class Outbox:
 
     # ------------------------------------------------------------------ the batch path
     def put(self, batch: OutputBatch, destinations: Sequence[str]) -> dict[str, list[int]]:
-        """Write the batch's objects and record them; claim what each destination lacks.
+        """Record the batch's objects; claim what each destination lacks.
 
         Returns ``destination -> indices into batch.datasets`` to send now (claimed: state
         ``sending``). Objects already ``sent`` to a destination, or being sent by the worker,
-        are not in its list.
+        are not in its list. No file is written here: :meth:`record` writes the objects that
+        were not stored.
         """
-        paths = [self._write(batch.key, ds) for ds in batch.datasets]
+        paths = [self.path_for(batch.key, str(ds.SOPInstanceUID)) for ds in batch.datasets]
         now = time.time()
         uids = [str(ds.SOPInstanceUID) for ds in batch.datasets]
         claim: dict[str, list[int]] = {d: [] for d in destinations}
@@ -213,11 +216,17 @@ class Outbox:
                 raise
         return claim
 
-    def record(self, report: SendReport, sop_uids: Sequence[str], *, series_key: str) -> int:
+    def record(self, report: SendReport, sop_uids: Sequence[str], *, series_key: str,
+               datasets: Sequence[Dataset] | None = None) -> int:
         """Record the outcome of one send to one destination; returns the objects not stored.
 
-        ``sop_uids[i]`` is the object of ``report.items[i]``.
+        ``sop_uids[i]`` is the object of ``report.items[i]``; ``datasets[i]``, when given (a
+        send from memory), is written to its outbox file unless it was stored.
         """
+        if datasets is not None:  # the files first: a row that says "retry" has its file
+            for ds, item in zip(datasets, report.items, strict=True):
+                if not item.stored:
+                    self._write(series_key, ds)
         dest = str(report.destination)
         now = time.time()
         wait: float | None = None  # one wait for the whole batch: it is retried together

@@ -612,10 +612,11 @@ class Node:
 
         def one(dest: Any) -> int:
             idx = claim[str(dest)]
-            report = self.sender.send([batch.datasets[i] for i in idx], dest, key=batch.key)
+            chosen = [batch.datasets[i] for i in idx]
+            report = self.sender.send(chosen, dest, key=batch.key)
             reports.append(report)
-            return self.outbox.record(report, [str(batch.datasets[i].SOPInstanceUID)
-                                               for i in idx], series_key=batch.key)
+            return self.outbox.record(report, [str(d.SOPInstanceUID) for d in chosen],
+                                      series_key=batch.key, datasets=chosen)
 
         with clock.stage(f"send:{batch.label}"):
             if len(dests) == 1:
