@@ -53,6 +53,7 @@ from io import BytesIO
 from typing import Any
 
 from pydicom import Dataset
+from pydicom import config as pydicom_config
 from pydicom.charset import convert_encodings, default_encoding
 from pydicom.dataelem import RawDataElement, convert_raw_data_element, empty_value_for_VR
 from pydicom.dataset import FileMetaDataset
@@ -186,6 +187,18 @@ _U32 = struct.Struct("<L")
 
 _TAGS: dict[int, BaseTag] = {}  # BaseTag per tag number seen (a few hundred at most)
 _SCAN_ONE = (None, False)
+_EMPTY: dict[tuple[str, bool], Any] = {}  # empty raw value per (VR, pydicom's None-as-empty)
+_RAW_NEW = tuple.__new__  # RawDataElement(...) without the namedtuple's Python-level __new__
+_RAW_DEFAULTS = (RawDataElement._field_defaults["is_raw"],
+                 RawDataElement._field_defaults["is_buffered"])
+
+
+def _empty_raw(vr: str) -> Any:
+    key = (vr, bool(pydicom_config.use_none_as_empty_text_VR_value))
+    value = _EMPTY.get(key, _EMPTY)
+    if value is _EMPTY:
+        value = _EMPTY[key] = empty_value_for_VR(vr, raw=True)
+    return value
 
 
 def _scan_explicit_le(data: bytes) -> tuple[dict[BaseTag, RawDataElement] | None, bool]:
@@ -200,7 +213,8 @@ def _scan_explicit_le(data: bytes) -> tuple[dict[BaseTag, RawDataElement] | None
     pos, end = 0, len(data)
     unpack, u32 = _EXPLICIT_HEAD.unpack_from, _U32.unpack_from
     known, long_vr, vr_text, tags = _ENCODED_VR, _LONG_VR, _VR_TEXT, _TAGS
-    new_raw = RawDataElement
+    new, cls = _RAW_NEW, RawDataElement
+    is_raw, is_buffered = _RAW_DEFAULTS
     has_sq = False
     while pos < end:
         if end - pos < 8:
@@ -225,8 +239,8 @@ def _scan_explicit_le(data: bytes) -> tuple[dict[BaseTag, RawDataElement] | None
             if len(tags) < 4096:
                 tags[number] = tag
         vr = vr_text[vr_b]
-        value = data[pos:pos + length] if length else empty_value_for_VR(vr, raw=True)
-        out[tag] = new_raw(tag, vr, length, value, pos, False, True)
+        out[tag] = new(cls, (tag, vr, length, data[pos:pos + length] if length
+                             else _empty_raw(vr), pos, False, True, is_raw, is_buffered))
         pos += length
     return out, has_sq
 
@@ -658,11 +672,20 @@ def _classes() -> tuple[type, type, type, type]:
                 while True:
                     if not self.assoc._dul_ready.is_set():
                         self.assoc._dul_ready.set()
-                    if st.want_socket and st.owner == "dul" and not st.pending:
-                        st.want_socket = False
-                        if self.state_machine.current_state == "Sta6":
+                    if (st.want_socket and st.owner == "dul" and not st.pending
+                            and self.event_queue.empty()):
+                        # the association thread may start before the A-ASSOCIATE-AC is
+                        # out (Sta3): it gets the socket once established, between two
+                        # PDUs, or never when the association ends first
+                        state = self.state_machine.current_state
+                        if state == "Sta6":
+                            st.want_socket = False
                             st.owner = "assoc"
-                        st.granted.set()
+                            st.granted.set()
+                            st.ready.set()
+                        elif state not in ("Sta2", "Sta3"):
+                            st.want_socket = False
+                            st.granted.set()
                     if idle:
                         sock = self.socket.socket if self.socket is not None else None
                         if st.owner != "dul" or st.pending:

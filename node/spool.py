@@ -48,7 +48,7 @@ BATCH_ROWS = 64
 """Instance rows committed together at most (group commit of the index)."""
 BATCH_DELAY_S = 0.02
 """Longest time an instance row waits for its commit while the spool is busy."""
-POOL_FILES = 48
+POOL_FILES = 64
 """Unnamed files kept open and ready to be written (:class:`_FilePool`)."""
 
 SCHEMA_VERSION = 2
@@ -229,6 +229,7 @@ class Spool:
         self._pending_since = 0.0
         self._pending_lock = threading.Lock()
         self._indexed: set[str] = set()  # series whose row this spool has committed
+        self._stems: dict[str, set[str]] = {}  # series key -> instance files it holds
         self._pool = _FilePool(self.root, POOL_FILES)
         self._proc_fd: int | None = None
         if self._pool.supported:
@@ -237,6 +238,7 @@ class Spool:
             except OSError:
                 self._pool.supported = False
         self._wake = threading.Condition(threading.Lock())
+        self._bg_idle = False
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
         self._closed = False
@@ -312,6 +314,22 @@ class Spool:
         """Where an instance is (or would be) stored."""
         return self.root / series_key / f"{instance_hash(sop_instance_uid)}.dcm"
 
+    def contains(self, series_key: str, sop_instance_uid: str) -> bool:
+        """Whether the spool holds a file for this instance (from memory: the series' folder
+        is listed once per process, then every store and discard is followed)."""
+        stem = instance_hash(sop_instance_uid)
+        with self._pending_lock:
+            stems = self._stems.get(series_key)
+        if stems is None:
+            try:
+                listed = {e.name[:-4] for e in os.scandir(self.root / series_key)
+                          if e.name.endswith(".dcm") and not e.name.startswith(".")}
+            except OSError:
+                listed = set()
+            with self._pending_lock:
+                stems = self._stems.setdefault(series_key, listed)
+        return stem in stems
+
     def store(self, series_key: str, sop_instance_uid: str,
               data: bytes | bytearray | memoryview | tuple[bytes, ...],
               *, protocol: str, expected: int | None = None) -> Path:
@@ -345,8 +363,7 @@ class Spool:
             self.warm()
             fd, low = self._pool.take()
             if low:
-                with self._wake:
-                    self._wake.notify()
+                self._nudge()
             if fd is None or not self._write_unnamed(fd, parts, final):
                 self._write_named(parts, folder, final)
             if self.fsync:
@@ -357,17 +374,22 @@ class Spool:
         row = (series_key, stem, str(final), time.time(), protocol, expected)
         if series_key in self._indexed:
             with self._pending_lock:
+                stems = self._stems.get(series_key)
+                if stems is not None:
+                    stems.add(stem)
                 first = not self._pending
                 if first:
                     self._pending_since = time.monotonic()
                 self._pending.append(row)
                 full = len(self._pending) >= BATCH_ROWS
             if first or full:  # the background thread commits it within BATCH_DELAY_S
-                with self._wake:
-                    self._wake.notify()
+                self._nudge(full)
         else:  # the series' first row: committed before success, so recovery knows it
             with self._lock:
                 with self._pending_lock:
+                    stems = self._stems.get(series_key)
+                    if stems is not None:
+                        stems.add(stem)
                     self._pending.append(row)
                 self._flush_locked()
         return final
@@ -479,6 +501,13 @@ class Spool:
                                                     name="cest-spool")
                     self._thread.start()
 
+    def _nudge(self, always: bool = False) -> None:
+        """Wake the background thread if it is in its long (idle) wait, or ``always``. The
+        receiving thread wakes it rarely: every wake-up is a thread switch on its time."""
+        with self._wake:
+            if always or self._bg_idle:
+                self._wake.notify()
+
     def _background(self) -> None:
         """Keep the pool of unnamed files full; group-commit pending rows."""
         retry_at = 0.0
@@ -500,12 +529,18 @@ class Spool:
             with self._wake:
                 if self._stop.is_set():
                     break
+                # while rows are pending it comes back by itself within BATCH_DELAY_S (and
+                # refills the pool then); idle, it waits long and is nudged
+                self._bg_idle = due is None
                 self._wake.wait(due if due is not None else 0.5)
+                self._bg_idle = False
 
     def discard(self, series_key: str, sop_instance_uid: str) -> None:
         """Remove an instance stored by :meth:`store` that the assembler then refused."""
         path = self.path_for(series_key, sop_instance_uid)
         path.unlink(missing_ok=True)
+        with self._pending_lock:
+            self._stems.get(series_key, set()).discard(path.stem)
         with self._lock:
             self._flush_locked()
             self._db.execute("BEGIN")

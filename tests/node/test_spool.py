@@ -152,11 +152,28 @@ def test_discard_of_a_pending_row(tmp_path, monkeypatch):
         path = sp.store(KEY, "1.2.3.2", _file(2), protocol="apt")  # its row is pending
         sp.discard(KEY, "1.2.3.2")
         assert not path.exists()
+        assert sp.contains(KEY, "1.2.3.1") and not sp.contains(KEY, "1.2.3.2")
         rec = sp.series(KEY)
         assert rec is not None and rec.n_instances == 1
         assert len(sp.instance_paths(KEY)) == 1
     finally:
         sp.close()
+
+
+def test_contains_follows_stores_and_lists_a_folder_once(tmp_path):
+    root = tmp_path / "spool"
+    sp = Spool(root, fsync=False)
+    try:
+        assert not sp.contains(KEY, "1.2.3.1")  # no folder yet
+        sp.store(KEY, "1.2.3.1", _file(1), protocol="apt")
+        assert sp.contains(KEY, "1.2.3.1") and not sp.contains(KEY, "1.2.3.2")
+    finally:
+        sp.close()
+    again = Spool(root, fsync=False)  # another process: the folder is what it knows
+    try:
+        assert again.contains(KEY, "1.2.3.1") and not again.contains("s-other", "1.2.3.1")
+    finally:
+        again.close()
 
 
 def test_close_commits_and_a_closed_spool_refuses(tmp_path, monkeypatch):
