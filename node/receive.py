@@ -474,8 +474,9 @@ class Receiver:
         if prep is None:
             log.info("series %s: matches no protocol; acknowledged and ignored", key)
             return STATUS_SUCCESS, ""
-        stored = self.spool.path_for(key, sop_uid)
-        if self.spool.contains(key, sop_uid) and stored.exists():
+        stored = (self.spool.path_for(key, sop_uid) if self.spool.contains(key, sop_uid)
+                  else None)
+        if stored is not None and stored.exists():
             # a duplicate SOP Instance UID: the first copy stays
             if not self._same_as_stored(prep, stored):
                 self._flag(key, "conflicting duplicate SOP Instance UID, first copy kept")

@@ -212,6 +212,7 @@ class Spool:
 
     def __init__(self, root: str | Path, *, fsync: bool = True):
         self.root = Path(root)
+        self._root_text = str(self.root)
         self.fsync = fsync
         _mkdir_private(self.root)
         self._lock = threading.Lock()
@@ -350,28 +351,29 @@ class Spool:
         """
         if self._closed:
             raise SpoolError(f"cannot store instance of series {series_key}: spool closed")
-        folder = self.root / series_key
         stem = instance_hash(sop_instance_uid)
-        final = folder / f"{stem}.dcm"
+        folder = f"{self._root_text}/{series_key}"  # text paths: pathlib is dear per call
+        final = f"{folder}/{stem}.dcm"
         parts = data if isinstance(data, tuple) else (data,)
         try:
             if series_key not in self._known_dirs:
-                _mkdir_private(folder)
+                _mkdir_private(Path(folder))
                 if self.fsync:
                     _fsync_dir(self.root)
                 self._known_dirs.add(series_key)
-            self.warm()
+            if self._thread is None:
+                self.warm()
             fd, low = self._pool.take()
             if low:
                 self._nudge()
-            if fd is None or not self._write_unnamed(fd, parts, final):
-                self._write_named(parts, folder, final)
+            if fd is None or not self._write_unnamed(fd, parts, folder, stem):
+                self._write_named(parts, folder, stem)
             if self.fsync:
                 _fsync_dir(folder)
         except OSError as exc:
             raise SpoolError(f"cannot store instance of series {series_key}: "
                              f"{exc.strerror or exc}") from exc
-        row = (series_key, stem, str(final), time.time(), protocol, expected)
+        row = (series_key, stem, final, time.time(), protocol, expected)
         if series_key in self._indexed:
             with self._pending_lock:
                 stems = self._stems.get(series_key)
@@ -392,7 +394,7 @@ class Spool:
                         stems.add(stem)
                     self._pending.append(row)
                 self._flush_locked()
-        return final
+        return Path(final)
 
     def _write_all(self, fd: int, parts: tuple[bytes | bytearray | memoryview, ...]) -> None:
         total = sum(len(p) for p in parts)
@@ -405,9 +407,10 @@ class Spool:
             os.fdatasync(fd)
 
     def _write_unnamed(self, fd: int, parts: tuple[bytes | bytearray | memoryview, ...],
-                       final: Path) -> bool:
-        """Write into a pool file and link it in as ``final``; False: could not link (the
-        caller writes a named file instead). The descriptor is closed either way."""
+                       folder: str, stem: str) -> bool:
+        """Write into a pool file and link it in as ``folder/stem.dcm``; False: could not
+        link (the caller writes a named file instead). The descriptor is closed either way."""
+        final = f"{folder}/{stem}.dcm"
         try:
             self._write_all(fd, parts)
             if self._proc_fd is None:
@@ -415,8 +418,11 @@ class Spool:
             try:
                 os.link(str(fd), final, src_dir_fd=self._proc_fd, follow_symlinks=True)
             except FileExistsError:  # a re-sent instance: replace the first copy atomically
-                tmp = final.with_name(f".{final.stem}.{threading.get_ident()}.tmp")
-                tmp.unlink(missing_ok=True)
+                tmp = f"{folder}/.{stem}.{threading.get_ident()}.tmp"
+                try:
+                    os.unlink(tmp)
+                except FileNotFoundError:
+                    pass
                 os.link(str(fd), tmp, src_dir_fd=self._proc_fd, follow_symlinks=True)
                 os.replace(tmp, final)
             return True
@@ -431,19 +437,19 @@ class Spool:
         finally:
             os.close(fd)
 
-    def _write_named(self, parts: tuple[bytes | bytearray | memoryview, ...], folder: Path,
-                     final: Path) -> None:
-        tmp = folder / f".{final.stem}.{threading.get_ident()}.tmp"
+    def _write_named(self, parts: tuple[bytes | bytearray | memoryview, ...], folder: str,
+                     stem: str) -> None:
+        tmp = f"{folder}/.{stem}.{threading.get_ident()}.tmp"
         try:
             fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
             try:
                 self._write_all(fd, parts)
             finally:
                 os.close(fd)
-            os.replace(tmp, final)
+            os.replace(tmp, f"{folder}/{stem}.dcm")
         except OSError:
             try:
-                tmp.unlink(missing_ok=True)
+                os.unlink(tmp)
             except OSError:
                 pass
             raise
@@ -638,7 +644,7 @@ def _mkdir_private(path: Path) -> None:
     os.chmod(path, 0o700)
 
 
-def _fsync_dir(path: Path) -> None:
+def _fsync_dir(path: str | Path) -> None:
     fd = os.open(path, os.O_RDONLY | os.O_DIRECTORY)
     try:
         os.fsync(fd)
