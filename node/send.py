@@ -1,7 +1,9 @@
 """C-STORE SCU: send a batch of derived objects to a destination archive.
 
-One association per destination per batch. The presentation contexts are built from the SOP
-classes and transfer syntaxes actually present in the batch (pynetdicom's
+One association per destination per batch, or one for several batches with a
+:class:`SendSession` (the node's budget-bound pass sends every output kind as soon as it is
+built, over one association). The presentation contexts are built from the SOP
+classes and transfer syntaxes actually present in the batch (and the session's) (pynetdicom's
 ``StoragePresentationContexts`` omits Parametric Map Storage, so a fixed list is not used).
 TCP_NODELAY is set on the SCU socket as soon as it connects (with Nagle's algorithm on, small
 C-STORE messages wait for delayed ACKs: measured on this machine, 59 s instead of 8.6 s for
@@ -243,6 +245,8 @@ class AttemptReport:
     tcp_nodelay: bool | None = None
     error: str = ""
     recovered_from_ledger: int = 0
+    reused: bool = False
+    """The association was a :class:`SendSession`'s, opened by an earlier batch."""
 
 
 @dataclass
@@ -455,6 +459,58 @@ def tcp_nodelay_of(assoc: Association) -> bool | None:
         return None
 
 
+class SendSession:
+    """An association kept open between the batches sent to one destination.
+
+    Made by :meth:`Sender.session`; pass it to :meth:`Sender.send` (``session=``). The first
+    send opens an association that proposes ``contexts`` (every SOP class and transfer syntax
+    the caller will send, :func:`contexts_for`) besides the batch's own, and leaves it open;
+    the next sends to the same destination reuse it while it is established and has accepted
+    every (SOP class, transfer syntax) the batch needs. A retry, a lost association or a batch
+    it cannot carry opens a new one as :meth:`Sender.send` always does. Message IDs run on
+    across batches, so a response known from the ledger is never taken for another's. Close
+    it (or use it as a context manager) to release the association. One thread at a time.
+    """
+
+    def __init__(self, contexts: Sequence[tuple[str, str]] = ()) -> None:
+        self.contexts = [(UID(c), UID(t)) for c, t in contexts]
+        self.assoc: Association | None = None
+        self.destination: Destination | None = None
+        self.ledger: _Ledger | None = None
+        self.accepted: set[tuple[UID, UID]] = set()
+        self.msg_id = 0
+        self.associations = 0
+        """Associations this session opened (for the benchmarks and tests)."""
+
+    def usable(self, dest: Destination, pairs: Iterable[tuple[UID, UID]]) -> bool:
+        return (self.assoc is not None and self.assoc.is_established and self.destination == dest
+                and all(p in self.accepted for p in pairs))
+
+    def keep(self, assoc: Association, dest: Destination, ledger: _Ledger,
+             accepted: set[tuple[UID, UID]], msg_id: int) -> None:
+        if self.assoc is not None and self.assoc is not assoc:
+            self.close()
+        self.assoc, self.destination, self.ledger = assoc, dest, ledger
+        self.accepted, self.msg_id = accepted, msg_id
+
+    def close(self) -> None:
+        assoc, self.assoc = self.assoc, None
+        if assoc is not None and assoc.is_established:
+            assoc.release()
+
+    def __enter__(self) -> SendSession:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+def contexts_for(datasets: Sequence[Dataset]) -> list[tuple[str, str]]:
+    """The (SOP class, transfer syntax) pairs of some data sets, for :class:`SendSession`."""
+    return list(dict.fromkeys((str(d.SOPClassUID), str(_transfer_syntax(d, i)))
+                              for i, d in enumerate(datasets)))
+
+
 class Sender:
     """C-STORE SCU for output batches.
 
@@ -486,8 +542,12 @@ class Sender:
         destination: Destination | DestinationLike | tuple[str, str, int],
         *,
         key: str = "",
+        session: SendSession | None = None,
     ) -> SendReport:
         """Send ``datasets`` to ``destination`` over one association (more only to retry).
+
+        With ``session`` the first attempt reuses the session's open association when it can
+        carry the batch, and the association stays open afterwards (:class:`SendSession`).
 
         Parameters
         ----------
@@ -529,7 +589,8 @@ class Sender:
                     break
             elif self._stop.is_set():
                 break
-            attempt, retry, permanent = self._attempt(number, datasets, pending, items, dest)
+            attempt, retry, permanent = self._attempt(number, datasets, pending, items, dest,
+                                                      session)
             report.attempts.append(attempt)
             pending = retry
             if permanent:
@@ -558,6 +619,10 @@ class Sender:
             return [f.result() for f in futures]
 
     # -- one association ------------------------------------------------------------------
+    def session(self, contexts: Sequence[tuple[str, str]] = ()) -> SendSession:
+        """A :class:`SendSession` proposing ``contexts`` on the associations it opens."""
+        return SendSession(contexts)
+
     def _make_ae(self) -> AE:
         s = self.settings
         ae = AE(ae_title=s.calling_ae)
@@ -575,17 +640,38 @@ class Sender:
         pending: list[int],
         items: list[ItemResult],
         dest: Destination,
+        session: SendSession | None = None,
     ) -> tuple[AttemptReport, list[int], bool]:
-        """Open one association and send what is pending.
+        """Open one association (or reuse the session's) and send what is pending.
 
         Returns the attempt's report, the indices still to resend, and whether the failure is
         permanent (no point retrying: association rejected permanently).
         """
         t0 = time.perf_counter()
         attempt = AttemptReport(number=number, elapsed_ms=0.0, offered=len(pending))
-        ae = self._make_ae()
         subset = [datasets[i] for i in pending]
-        ae.requested_contexts = build_contexts(subset)
+        needed = {(UID(ds.SOPClassUID), _transfer_syntax(ds, 0)) for ds in subset}
+        permanent = False
+        if session is not None and session.usable(dest, needed):
+            assert session.assoc is not None and session.ledger is not None
+            attempt.reused = True
+            return self._run(attempt, session.assoc, session.ledger, session.accepted,
+                             datasets, pending, items, dest, session, t0)
+        ae = self._make_ae()
+        contexts = build_contexts(subset)
+        if session is not None:
+            have = {(UID(str(cx.abstract_syntax)), UID(str(cx.transfer_syntax[0])))
+                    for cx in contexts}
+            for sop_class, ts in session.contexts:
+                if (sop_class, ts) in have or len(contexts) >= MAX_CONTEXTS:
+                    continue
+                cx = PresentationContext()
+                cx.abstract_syntax = sop_class
+                cx.transfer_syntax = ([ts, ImplicitVRLittleEndian]
+                                      if ts in _UNCOMPRESSED and ts != ImplicitVRLittleEndian
+                                      else [ts])
+                contexts.append(cx)
+        ae.requested_contexts = contexts
         ledger = _Ledger()
         rejection: dict[str, int] = {}
 
@@ -610,8 +696,6 @@ class Sender:
             (evt.EVT_DIMSE_RECV, ledger.on_dimse_recv),
             (evt.EVT_ACSE_RECV, on_acse_recv),
         ]
-        still: list[int] = []
-        permanent = False
         tls_args = None
         if dest.tls:
             try:
@@ -626,38 +710,52 @@ class Sender:
                 attempt.elapsed_ms = (time.perf_counter() - t0) * 1000.0
                 LOG.error("send to %s: %s", dest, exc)
                 return attempt, list(pending), True
+        if session is not None:
+            session.close()  # a new association replaces the one it could not use
+            session.associations += 1
         assoc = ae.associate(
             dest.host, dest.port, ae_title=dest.ae_title, max_pdu=self.settings.max_pdu,
             evt_handlers=handlers, tls_args=tls_args,
         )
+        attempt.tcp_nodelay = tcp_nodelay_of(assoc)
+        if not assoc.is_established:
+            if assoc.is_rejected:
+                kind = "permanently" if rejection.get("result") == 1 else "transiently"
+                attempt.error = (
+                    f"association rejected {kind} by {dest.ae_title} (source "
+                    f"{rejection.get('source')}, reason {rejection.get('reason')})"
+                )
+                permanent = rejection.get("result") == 1
+            elif not connected.is_set():
+                attempt.error = f"cannot connect to {dest}" + (
+                    " (TCP or TLS handshake failed)" if dest.tls else "")
+            elif assoc.is_aborted:
+                attempt.error = f"association aborted by {dest}"
+            else:
+                attempt.error = f"no association with {dest} (ACSE timeout)"
+            for i in pending:
+                items[i].detail = attempt.error
+            self._end(attempt, number, dest, t0, still=True)
+            return attempt, list(pending), permanent
+        accepted = {
+            (UID(str(cx.abstract_syntax)), UID(ts))
+            for cx in assoc.accepted_contexts
+            for ts in cx.transfer_syntax
+        }
+        return self._run(attempt, assoc, ledger, accepted, datasets, pending, items, dest,
+                         session, t0)
+
+    def _run(self, attempt: AttemptReport, assoc: Association, ledger: _Ledger,
+             accepted: set[tuple[UID, UID]], datasets: list[Dataset], pending: list[int],
+             items: list[ItemResult], dest: Destination, session: SendSession | None,
+             t0: float) -> tuple[AttemptReport, list[int], bool]:
+        """Send ``pending`` on an established association; keep it in ``session`` or release."""
+        attempt.established = True
+        accepted_classes = {c for c, _ in accepted}
+        still: list[int] = []
+        permanent = False
+        msg_id = session.msg_id if session is not None and session.assoc is assoc else 0
         try:
-            attempt.tcp_nodelay = tcp_nodelay_of(assoc)
-            if not assoc.is_established:
-                if assoc.is_rejected:
-                    kind = "permanently" if rejection.get("result") == 1 else "transiently"
-                    attempt.error = (
-                        f"association rejected {kind} by {dest.ae_title} (source "
-                        f"{rejection.get('source')}, reason {rejection.get('reason')})"
-                    )
-                    permanent = rejection.get("result") == 1
-                elif not connected.is_set():
-                    attempt.error = f"cannot connect to {dest}" + (
-                        " (TCP or TLS handshake failed)" if dest.tls else "")
-                elif assoc.is_aborted:
-                    attempt.error = f"association aborted by {dest}"
-                else:
-                    attempt.error = f"no association with {dest} (ACSE timeout)"
-                for i in pending:
-                    items[i].detail = attempt.error
-                return attempt, list(pending), permanent
-            attempt.established = True
-            accepted = {
-                (UID(str(cx.abstract_syntax)), UID(ts))
-                for cx in assoc.accepted_contexts
-                for ts in cx.transfer_syntax
-            }
-            accepted_classes = {c for c, _ in accepted}
-            msg_id = 0
             for pos, i in enumerate(pending):
                 ds = datasets[i]
                 item = items[i]
@@ -716,15 +814,28 @@ class Sender:
                         still.append(i)
             return attempt, still, permanent
         finally:
-            if assoc.is_established:
-                assoc.release()
-            attempt.elapsed_ms = (time.perf_counter() - t0) * 1000.0
-            if attempt.error or still:
-                LOG.warning(
-                    "send to %s, attempt %d: %d of %d acknowledged in %.0f ms%s",
-                    dest, number, attempt.acknowledged, attempt.offered, attempt.elapsed_ms,
-                    f" ({attempt.error})" if attempt.error else "",
-                )
+            keep = (session is not None and assoc.is_established and not still
+                    and not attempt.error)
+            if keep:
+                assert session is not None
+                session.keep(assoc, dest, ledger, accepted, msg_id)
+            else:
+                if session is not None and session.assoc is assoc:
+                    session.assoc = None
+                if assoc.is_established:
+                    assoc.release()
+            self._end(attempt, attempt.number, dest, t0, still=bool(still))
+
+    @staticmethod
+    def _end(attempt: AttemptReport, number: int, dest: Destination, t0: float, *,
+             still: bool) -> None:
+        attempt.elapsed_ms = (time.perf_counter() - t0) * 1000.0
+        if attempt.error or still:
+            LOG.warning(
+                "send to %s, attempt %d: %d of %d acknowledged in %.0f ms%s",
+                dest, number, attempt.acknowledged, attempt.offered, attempt.elapsed_ms,
+                f" ({attempt.error})" if attempt.error else "",
+            )
 
     @staticmethod
     def _log(report: SendReport) -> None:

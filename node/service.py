@@ -15,7 +15,7 @@ import queue
 import threading
 import time
 from collections.abc import Callable, Sequence
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -40,7 +40,7 @@ from node.outbox import Outbox, OutboxWorker, RetryPolicy
 from node.receive import Receiver
 from node.recovery import Recovery
 from node.schedule import CostModel, plan_methods
-from node.send import Sender, SendReport, SendSettings
+from node.send import Sender, SendReport, SendSession, SendSettings
 from node.spool import Spool
 from node.timing import LatencyLog, SeriesClock
 from node.types import AssembledSeries, OutputBatch, uid_from
@@ -61,6 +61,17 @@ log = logging.getLogger("cest_node.service")
 OUTPUT_ORDER = ("derived_mr", "secondary_capture", "parametric_map")
 
 Deliver = Callable[[OutputBatch, SeriesClock], bool]
+Submit = Callable[[OutputBatch, SeriesClock], "Future[bool]"]
+
+#: What the node's outputs are, for the association a pass keeps open (PS3.4 Annex B; every
+#: builder writes Explicit VR Little Endian). Anything else opens an association of its own.
+OUTPUT_CONTEXTS = tuple((c, "1.2.840.10008.1.2.1") for c in (
+    "1.2.840.10008.5.1.4.1.1.4",       # MR Image Storage
+    "1.2.840.10008.5.1.4.1.1.7",       # Secondary Capture Image Storage
+    "1.2.840.10008.5.1.4.1.1.30",      # Parametric Map Storage
+    "1.2.840.10008.5.1.4.1.1.88.34",   # Comprehensive 3D SR Storage
+    "1.2.840.10008.5.1.4.1.1.66.4",    # Segmentation Storage
+))
 
 
 @dataclass
@@ -81,6 +92,8 @@ class SeriesOutcome:
     """Processing raised (the series is marked failed); a send still retrying is not this."""
     abandoned: bool = False
     """The deferred pass stopped on shutdown (it runs again at the next start)."""
+    pending: list[tuple[str, Any]] = field(default_factory=list, repr=False, compare=False)
+    """Batches handed to the processor's ``submit`` and not yet settled (label, future)."""
 
 
 def output_series_uid(source_series_uid: str, method: str, kind: str) -> str:
@@ -124,6 +137,12 @@ class Processor:
         The scheduler's cost model (shared so that measurements refine it).
     keep_maps
         Keep the computed maps in the outcome (tests and the demo use them).
+    submit
+        Optional ``f(batch, clock) -> Future[bool]``: delivers in the background, in the
+        order submitted. With it the budget-bound pass streams: each output kind is handed
+        over as soon as it is built, and the pass builds the next while it is sent; the
+        primary's acknowledgement is marked when its last batch is stored. The deferred pass
+        always uses ``deliver``.
     """
 
     #: voxels per chunk of a model-based fit in the deferred pass (between chunks the pass
@@ -131,9 +150,10 @@ class Processor:
     CHUNK_VOXELS = 4096
 
     def __init__(self, config: NodeConfig, deliver: Deliver, *, cost: CostModel | None = None,
-                 keep_maps: bool = False):
+                 keep_maps: bool = False, submit: Submit | None = None):
         self.config = config
         self.deliver = deliver
+        self.submit = submit
         self.cost = cost or CostModel.from_registry(METHODS)
         self.keep_maps = keep_maps
 
@@ -153,6 +173,7 @@ class Processor:
         try:
             job = self._process(series, protocol, clock, outcome)
         except Exception as exc:  # a failure of one series never stops the node
+            self._settle(outcome)
             outcome.ok = False
             outcome.failed = True
             outcome.error = f"{type(exc).__name__}: {exc}"
@@ -301,13 +322,16 @@ class Processor:
                 res = pipeline.compute(prep, name)
             measured[name] = res.seconds
             self.cost.learn(name, seconds=res.seconds, n_voxels=max(res.n_voxels, 1))
-            built = self._emit(series, protocol, prep, res, clock, outcome, note=note)
+            built = self._emit(series, protocol, prep, res, clock, outcome, note=note,
+                               stream=True)
             results.append((res, next((d for d in built if d.SOPClassUID == PARAMETRIC_MAP),
                                       None)))
             if name == plan.primary:
-                clock.mark("primary_ack")
+                self._when_sent(outcome, lambda: clock.mark("primary_ack"))
         clock.info["measured_s"] = {k: round(v, 4) for k, v in measured.items()}
-        self._reports(series, protocol, prep, results, figures, reasons, clock, outcome)
+        self._reports(series, protocol, prep, results, figures, reasons, clock, outcome,
+                      stream=True)
+        self._settle(outcome)
         clock.mark("last_ack")
         outcome.ok = not outcome.error
         if plan.deferred:
@@ -315,6 +339,39 @@ class Processor:
                                reported=[(r, None if pm is None else header_only(pm))
                                          for r, pm in results])
         return None
+
+    def _hand_over(self, batch: OutputBatch, clock: SeriesClock, outcome: SeriesOutcome, *,
+                   stream: bool) -> None:
+        """Deliver a batch now, or submit it (``stream`` and a ``submit``) to settle later."""
+        if not batch.datasets:
+            return
+        if stream and self.submit is not None:
+            outcome.pending.append((batch.label, self.submit(batch, clock)))
+            return
+        if not self.deliver(batch, clock):
+            outcome.error = outcome.error or f"{batch.label}: not every object was stored"
+
+    @staticmethod
+    def _when_sent(outcome: SeriesOutcome, action: Callable[[], object]) -> None:
+        """Run ``action`` once every batch submitted so far is settled (now, if none is
+        pending: the submitted batches are delivered in order, so the last one's end is)."""
+        if not outcome.pending:
+            action()
+            return
+        outcome.pending[-1][1].add_done_callback(lambda _f: action())
+
+    @staticmethod
+    def _settle(outcome: SeriesOutcome) -> None:
+        """Wait for the submitted batches; a batch not stored is the outcome's error."""
+        pending, outcome.pending = outcome.pending, []
+        for label, fut in pending:
+            try:
+                ok = bool(fut.result())
+            except Exception as exc:  # a delivery that raised: its objects are unaccounted
+                log.error("%s: delivery failed: %s: %s", label, type(exc).__name__, exc)
+                ok = False
+            if not ok:
+                outcome.error = outcome.error or f"{label}: not every object was stored"
 
     @staticmethod
     def _note(series: AssembledSeries, reasons: list[QcReason]) -> str:
@@ -325,7 +382,8 @@ class Processor:
     def _reports(self, series: AssembledSeries, protocol: Protocol, prep: pipeline.Prepared,
                  results: list[tuple[pipeline.MethodResult, Dataset | None]],
                  figures: QcFigures, reasons: list[QcReason], clock: SeriesClock,
-                 outcome: SeriesOutcome, *, deferred: list[str] | None = None) -> None:
+                 outcome: SeriesOutcome, *, deferred: list[str] | None = None,
+                 stream: bool = False) -> None:
         """The per-series outputs (SR, summary page, Segmentation) from every model-free map,
         sent after the per-method outputs so they never delay the primary.
 
@@ -370,15 +428,15 @@ class Processor:
             )
             with clock.stage(f"build:report:{kind}"):
                 datasets.extend(REPORT_BUILDERS[kind](req))
-        ok = self.deliver(OutputBatch(series.key, datasets, label="report"), clock)
-        if not ok:
-            outcome.error = outcome.error or "report: not every object was stored"
+        self._hand_over(OutputBatch(series.key, datasets, label="report"), clock, outcome,
+                        stream=stream)
         outcome.objects += len(datasets)
 
     def _emit(self, series: AssembledSeries, protocol: Protocol, prep: pipeline.Prepared,
               res: pipeline.MethodResult, clock: SeriesClock, outcome: SeriesOutcome,
-              *, note: str | None = None) -> list[Dataset]:
-        """Build every configured output of one method and deliver them as one batch."""
+              *, note: str | None = None, stream: bool = False) -> list[Dataset]:
+        """Build every configured output of one method and deliver them as one batch (with
+        ``stream``, hand each output kind over as soon as it is built)."""
         name = res.name
         if self.keep_maps:
             outcome.maps[name] = res.values
@@ -401,11 +459,20 @@ class Processor:
                 display_range=lo_hi,
                 note=self._note(series, []) if note is None else note,
             )
-            with clock.stage(f"build:{name}:{kind}"):
-                datasets.extend(BUILDERS[kind](req))
-        ok = self.deliver(OutputBatch(series.key, datasets, label=name), clock)
-        if not ok:
-            outcome.error = outcome.error or f"{name}: not every object was stored"
+            try:
+                with clock.stage(f"build:{name}:{kind}"):
+                    built = BUILDERS[kind](req)
+            except Exception as exc:  # one output kind failing never costs the others
+                log.exception("series %s: %s %s not built", series.key, name, kind)
+                outcome.error = outcome.error or f"{name} {kind}: {type(exc).__name__}: {exc}"
+                continue
+            datasets.extend(built)
+            if stream and self.submit is not None:
+                self._hand_over(OutputBatch(series.key, built, label=name), clock, outcome,
+                                stream=True)
+        if not (stream and self.submit is not None):
+            self._hand_over(OutputBatch(series.key, datasets, label=name), clock, outcome,
+                            stream=False)
         outcome.objects += len(datasets)
         outcome.methods.append(name)
         return datasets
@@ -455,7 +522,12 @@ class Node:
         self.sender = Sender(send_settings or SendSettings(
             calling_ae=config.ae_title, tls=config.tls, retries=1, backoff_s=0.2),
             stop=self._stop)
-        self.processor = Processor(config, self._deliver, keep_maps=keep_maps)
+        self.processor = Processor(config, self._deliver, keep_maps=keep_maps,
+                                   submit=self._submit)
+        # the budget-bound passes' batches, delivered in order on one thread, each
+        # destination over an association kept open while a pass streams (SendSession)
+        self._delivery: ThreadPoolExecutor | None = None
+        self._sessions: dict[str, SendSession] = {}
         self.spool = Spool(config.spool_dir, fsync=config.fsync)
         self.receiver = Receiver(config, self._on_series, spool=self.spool)
         self.outbox = Outbox(config.spool_dir, policy=RetryPolicy(
@@ -480,6 +552,7 @@ class Node:
 
     def start(self) -> Node:
         self._stop.clear()
+        self._delivery = ThreadPoolExecutor(max_workers=1, thread_name_prefix="cest-deliver")
         self._deferred_thread = threading.Thread(target=self._deferred_loop,
                                                  name="cest-deferred", daemon=True)
         self._deferred_thread.start()
@@ -510,6 +583,10 @@ class Node:
         if self._deferred_thread is not None:
             self._deferred_thread.join(timeout=30)
             self._deferred_thread = None
+        delivery, self._delivery = self._delivery, None
+        if delivery is not None:
+            delivery.submit(self._close_sessions)
+            delivery.shutdown(wait=True)
         self.worker.join()
         self.outbox.close()
 
@@ -533,6 +610,12 @@ class Node:
             with self._busy_cond:
                 self._busy -= 1
                 self._busy_cond.notify_all()
+            delivery = self._delivery
+            if delivery is not None:
+                try:  # after the pass's last batch (the delivery thread runs in order)
+                    delivery.submit(self._close_sessions)
+                except RuntimeError:  # shut down meanwhile
+                    pass
         self._mark(outcome, job)
         self._finish(outcome)
         if job is not None:
@@ -596,14 +679,48 @@ class Node:
                 self._mark(outcome, None)
             self._finish(outcome)
 
-    def _deliver(self, batch: OutputBatch, clock: SeriesClock) -> bool:
+    def _submit(self, batch: OutputBatch, clock: SeriesClock) -> Future[bool]:
+        """Deliver in the background, in order, over the pass's open associations (at once
+        when the node is not started)."""
+        delivery = self._delivery
+        if delivery is not None:
+            try:
+                return delivery.submit(self._deliver, batch, clock, streamed=True)
+            except RuntimeError:  # shut down meanwhile: deliver here
+                pass
+        done: Future[bool] = Future()
+        done.set_result(self._deliver(batch, clock))
+        return done
+
+    def _close_sessions(self) -> None:
+        """On the delivery thread, when no pass streams: release the kept associations,
+        unless another pass is running (its next batch would reopen them)."""
+        with self._busy_cond:
+            if self._busy:
+                return
+        sessions, self._sessions = self._sessions, {}
+        for session in sessions.values():
+            try:
+                session.close()
+            except Exception:  # a release that fails leaves nothing to clean up here
+                log.debug("release of a kept association failed", exc_info=True)
+
+    def _session(self, dest: Any, streamed: bool) -> SendSession | None:
+        if not streamed:
+            return None
+        key = str(dest)
+        if key not in self._sessions:
+            self._sessions[key] = self.sender.session(OUTPUT_CONTEXTS)
+        return self._sessions[key]
+
+    def _deliver(self, batch: OutputBatch, clock: SeriesClock, *, streamed: bool = False) -> bool:
         if not self.config.destinations:
             log.warning("series %s: no destination configured; %d objects kept in %s",
                         batch.key, len(batch.datasets), self._unsent_dir)
             write_datasets(batch.datasets, self._unsent_dir / batch.key)
             return True
         if not self.durable:
-            return self._send_from_memory(batch, clock)
+            return self._send_from_memory(batch, clock, streamed=streamed)
         with clock.stage(f"outbox:{batch.label}"):
             claim = self.outbox.put(batch, [str(d) for d in self.config.destinations])
         dests = [d for d in self.config.destinations if claim.get(str(d))]
@@ -613,7 +730,8 @@ class Node:
         def one(dest: Any) -> int:
             idx = claim[str(dest)]
             chosen = [batch.datasets[i] for i in idx]
-            report = self.sender.send(chosen, dest, key=batch.key)
+            report = self.sender.send(chosen, dest, key=batch.key,
+                                      session=self._session(dest, streamed))
             reports.append(report)
             return self.outbox.record(report, [str(d.SOPInstanceUID) for d in chosen],
                                       series_key=batch.key, datasets=chosen)
@@ -633,10 +751,16 @@ class Node:
             return False
         return True
 
-    def _send_from_memory(self, batch: OutputBatch, clock: SeriesClock) -> bool:
+    def _send_from_memory(self, batch: OutputBatch, clock: SeriesClock, *,
+                          streamed: bool = False) -> bool:
         ok = True
         with clock.stage(f"send:{batch.label}"):
-            reports = self.sender.send_batch(batch, self.config.destinations)
+            if len(self.config.destinations) == 1:
+                dest = self.config.destinations[0]
+                reports = [self.sender.send(batch.datasets, dest, key=batch.key,
+                                            session=self._session(dest, streamed))]
+            else:
+                reports = self.sender.send_batch(batch, self.config.destinations)
         self.metrics.observe_send(batch.label, reports)
         for rep in reports:
             if not rep.ok:

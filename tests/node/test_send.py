@@ -34,6 +34,7 @@ from node.send import (
     SendSettings,
     build_contexts,
     classify_status,
+    contexts_for,
     echo,
     send_batch,
 )
@@ -203,6 +204,46 @@ def test_mixed_batch_to_storescp_over_one_association(
     ours = "\n".join(r.getMessage() for r in caplog.records if r.name.startswith("node."))
     assert "s-test" in ours
     assert PATIENT_NAME not in ours and PATIENT_ID not in ours
+
+
+def test_session_carries_several_batches_over_one_association(storescp: StoreSCP) -> None:
+    """A SendSession keeps the association between batches of different SOP classes (each
+    (class, syntax) was proposed up front) and releases it on close; storescp stores all."""
+    mr = mr_batch(n_slices=3, seed="session")
+    pm, sc = parametric_map(mr[:3]), secondary_capture(mr[0])
+    dest = (storescp.ae_title, "127.0.0.1", storescp.port)
+    sender = Sender(fast_settings())
+    with sender.session(contexts_for([mr[0], pm, sc])) as session:
+        reports = [sender.send(b, dest, key="s-test", session=session)
+                   for b in (mr[:4], [sc], mr[4:], [pm])]
+        assert session.associations == 1
+        assert [r.attempts[0].reused for r in reports] == [False, True, True, True]
+        assert session.assoc is not None and session.assoc.is_established
+    assert session.assoc is None  # released on close
+    assert all(r.ok and len(r.attempts) == 1 for r in reports)
+    sent = {str(d.SOPInstanceUID) for d in [*mr, pm, sc]}
+    files = storescp.wait_for(len(sent))
+    assert {str(dcmread(f, stop_before_pixels=True).SOPInstanceUID) for f in files} == sent
+
+
+def test_session_reopens_after_the_association_is_lost(storescp: StoreSCP) -> None:
+    """When the kept association is gone (aborted here), the next batch opens a new one and
+    is stored; a batch the kept association cannot carry (a class not proposed) too."""
+    mr = mr_batch(n_slices=2, seed="session-lost")
+    sc = secondary_capture(mr[0])
+    dest = (storescp.ae_title, "127.0.0.1", storescp.port)
+    sender = Sender(fast_settings())
+    with sender.session(contexts_for(mr[:1])) as session:
+        first = sender.send(mr[:3], dest, session=session)
+        assert session.assoc is not None
+        session.assoc.abort()
+        second = sender.send(mr[3:], dest, session=session)
+        third = sender.send([sc], dest, session=session)  # SC was not proposed up front
+        assert session.associations == 3
+    assert first.ok and second.ok and third.ok
+    assert not second.attempts[0].reused and not third.attempts[0].reused
+    files = storescp.wait_for(len(mr) + 1)
+    assert len({str(dcmread(f, stop_before_pixels=True).SOPInstanceUID) for f in files}) == len(mr) + 1
 
 
 @pytest.mark.peers
