@@ -2,14 +2,16 @@
 
 20 slices x 61 offsets x 128 x 128 uint16 (node.synth's convention, about 33 kB each), loopback,
 one association. The anchor is DCMTK ``storescp`` writing every object to disk; the node is
-:class:`node.receive.Receiver` (spool write, index row and frame decode into the series stack
-before each success status). Both peers run with ``TCP_NODELAY=1`` (the node sets it on every
+:class:`node.receive.Receiver` (spool write, flushed to the disk with fsync on, and frame
+decode into the series stack before each success status; the index row follows in a group
+commit, see :mod:`node.spool`). Both peers run with ``TCP_NODELAY=1`` (the node sets it on every
 accepted socket). Runs are interleaved (anchor, node, anchor, node, ...) and the ratio is taken
 pair by pair, because storescp alone varies by a factor of two or more between runs here.
 
 Each configuration (fsync on and off; the fast path on and off) is its own set of pairs. The
 time is storescu's wall clock, from its start to its exit after the last response; the node's
-assembly of the complete series is waited for (not timed) before the next run.
+assembly of the complete series is waited for (not timed) before the next run. The summary
+gives the median of the pairwise ratios and their range (the spread between pairs).
 
 Run: ``.venv/bin/python -m tests.bench.bench_ingest [--runs 5] [--no-library]``
 """
@@ -111,12 +113,13 @@ def main() -> None:
                 ratios.append(b / a)
                 print(f"{name}  pair {run + 1}: storescp {a:5.2f} s  cest-node {b:5.2f} s  "
                       f"ratio {b / a:4.2f}", flush=True)
-            summary.append((name, med(anchor), med(node), med(ratios)))
+            summary.append((name, med(anchor), med(node), med(ratios), min(ratios), max(ratios)))
     print(f"\n{n} instances ({SLICES} x {OFFSETS} x {SIZE} x {SIZE}), median of {args.runs} "
           "interleaved pairs:")
-    for name, a, b, r in summary:
+    for name, a, b, r, lo, hi in summary:
         print(f"  {name}: storescp {a:5.2f} s ({n / a:4.0f}/s)  cest-node {b:5.2f} s "
-              f"({n / b:4.0f}/s)  ratio (pairwise median) {r:4.2f}  goal <= 1.50")
+              f"({n / b:4.0f}/s)  ratio (pairwise median) {r:4.2f} (pairs {lo:4.2f}-{hi:4.2f})"
+              "  goal <= 1.50")
 
 
 if __name__ == "__main__":
