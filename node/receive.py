@@ -151,6 +151,8 @@ def _walk(buf: memoryview, pos: int, end: int, *, implicit: bool, until: int | N
             # a sequence (or item, or encapsulated pixel data) closed by a delimiter
             if tag == _ITEM:
                 pos = _walk(buf, pos, end, implicit=implicit, until=_ITEM_END)
+            elif not implicit and vr not in (b"SQ", b"UN"):
+                pos = _walk_fragments(buf, pos, end)  # encapsulated (PS3.5 A.4)
             else:
                 pos = _walk(buf, pos, end, implicit=implicit if vr != b"UN" else True,
                             until=_SEQ_END)
@@ -164,6 +166,25 @@ def _walk(buf: memoryview, pos: int, end: int, *, implicit: bool, until: int | N
     if until is not None:
         raise ValueError("data set ends before a sequence or item delimiter")
     return pos
+
+
+def _walk_fragments(buf: memoryview, pos: int, end: int) -> int:
+    """Skip the items of encapsulated pixel data (the Basic Offset Table, then fragments:
+    defined-length items of bytes, not data sets) up to its sequence delimiter."""
+    while end - pos >= 8:
+        tag = (int.from_bytes(buf[pos:pos + 2], "little") << 16
+               | int.from_bytes(buf[pos + 2:pos + 4], "little"))
+        length = int.from_bytes(buf[pos + 4:pos + 8], "little")
+        pos += 8
+        if tag == _SEQ_END:
+            return pos
+        if tag != _ITEM or length == _UNDEFINED:
+            raise ValueError(f"encapsulated pixel data: no item at byte {pos - 8}")
+        if length > end - pos:
+            raise ValueError(f"encapsulated pixel data: fragment cut short: {length} bytes "
+                             f"declared, {end - pos} left")
+        pos += length
+    raise ValueError("encapsulated pixel data ends before its sequence delimiter")
 
 
 def _is_sequence(tag: int) -> bool:
