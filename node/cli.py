@@ -385,6 +385,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    from node.memory import tune_allocator
+
+    tune_allocator()  # before any thread takes an arena (node.memory)
     args = build_parser().parse_args(argv)
     _setup_logging(args.verbose, quiet=args.command in ("demo", "process", "phantom", "echo",
                                                         "check-config", "conformance", "health",

@@ -39,6 +39,7 @@ from typing import Any
 import numpy as np
 
 from node.config import default_config
+from node.memory import tune_allocator
 from node.service import Node, SeriesOutcome
 from node.synth import series_from_arrays, write_series
 from quant.phantom import make_phantom
@@ -149,6 +150,7 @@ def report(name: str, m: dict[str, Any]) -> None:
 
 
 def main() -> None:
+    tune_allocator()  # as `cest-node` does first thing (node.memory)
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--runs", type=int, default=5)
     ap.add_argument("--slices", type=int, default=20)

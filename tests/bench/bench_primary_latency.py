@@ -23,6 +23,7 @@ import threading
 from pathlib import Path
 
 from node.config import default_config
+from node.memory import tune_allocator
 from node.service import Node, SeriesOutcome
 from node.synth import series_from_arrays, write_series
 from quant.phantom import make_phantom
@@ -54,6 +55,7 @@ def one_run(work: Path, orthanc: Orthanc, files: list[Path], *, durable: bool) -
 
 
 def main() -> None:
+    tune_allocator()  # as `cest-node` does first thing (node.memory)
     ap = argparse.ArgumentParser()
     ap.add_argument("--runs", type=int, default=5)
     ap.add_argument("--compare", action="store_true",

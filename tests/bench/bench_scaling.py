@@ -23,10 +23,12 @@ from pathlib import Path
 
 import numpy as np
 
+from node.memory import tune_allocator
 from tests.bench.bench_latency import make_files, measure, p95
 
 
 def main() -> None:
+    tune_allocator()  # as `cest-node` does first thing (node.memory)
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--runs", type=int, default=5)
     ap.add_argument("--slices", type=int, nargs="+", default=[5, 20, 40])

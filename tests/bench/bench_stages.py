@@ -28,6 +28,7 @@ from pathlib import Path
 import numpy as np
 
 from node import pipeline
+from node.memory import tune_allocator
 from quant.phantom import make_phantom
 from quant.registry import METHODS
 from tests.bench.bench_latency import make_files, measure
@@ -111,6 +112,7 @@ def stages_end_to_end(n_series: int, slices: int) -> None:
 
 
 def main() -> None:
+    tune_allocator()  # as `cest-node` does first thing (node.memory)
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--runs", type=int, default=5)
     ap.add_argument("--series", type=int, default=5, help="series end to end (0: skip)")
