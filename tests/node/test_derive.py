@@ -304,6 +304,30 @@ def test_secondary_capture_attributes():
         assert "Research use only" in ds.ImageComments
 
 
+def test_secondary_capture_template_gives_the_objects_highdicom_builds():
+    """The slices after the first are the first object with their own pixels, UIDs, number
+    and source (node.derive.sc.build): element for element what highdicom builds for each
+    slice (highdicom's own build is the reference), apart from its creation timestamps."""
+    req = make_request("secondary_capture")
+    from node.derive import sc as sc_builder
+
+    fast = sc_builder.build(req)
+    full = sc_builder.build(req, template=False)
+    stamps = {"InstanceCreationDate", "InstanceCreationTime", "ContentDate", "ContentTime",
+              "DateOfSecondaryCapture", "TimeOfSecondaryCapture"}
+    for a, b in zip(fast, full, strict=True):
+        keys = {e.keyword or str(e.tag) for e in a} | {e.keyword or str(e.tag) for e in b}
+        for kw in sorted(keys - stamps - {"ContributingEquipmentSequence"}):
+            assert a.get(kw) == b.get(kw), kw
+        for x, y in zip(a.ContributingEquipmentSequence, b.ContributingEquipmentSequence,
+                        strict=True):
+            assert ({e.keyword: e.value for e in x if e.keyword != "ContributionDateTime"}
+                    == {e.keyword: e.value for e in y if e.keyword != "ContributionDateTime"})
+        assert a.file_meta == b.file_meta
+        assert a.PixelData == b.PixelData
+    assert len({d.SOPInstanceUID for d in fast}) == len(fast)
+
+
 def test_secondary_capture_colours_follow_the_map():
     req = make_request("secondary_capture")
     (ds, *_) = BUILDERS["secondary_capture"](req)
