@@ -176,6 +176,12 @@ class SendSettings:
     guard_reactor_race
         Install :class:`ResponseQueue` on each association (default True; False only to
         measure the library's own behaviour).
+    loop_delay_s
+        How long pynetdicom's DUL thread sleeps when it finds nothing to do (the library's
+        ``_run_loop_delay``, 1 ms by default, a latency added to each PDU in and out).
+        0.2 ms: 41 objects to storescp in 205 ms instead of 259 (medians of 8 interleaved
+        runs, loaded machine); the thread wakes 5,000 times a second only while an
+        association is open.
     tls
         Certificates for destinations with ``tls`` set (:class:`~node.tls.TlsSettings`:
         ``ca_file`` checks the destination, ``cert_file``/``key_file`` are our client
@@ -191,6 +197,7 @@ class SendSettings:
     dimse_timeout_s: float = 3.0
     network_timeout_s: float = 30.0
     guard_reactor_race: bool = True
+    loop_delay_s: float = 0.0002
     tls: TlsSettings | None = None
 
     def __post_init__(self) -> None:
@@ -203,6 +210,8 @@ class SendSettings:
             raise ValueError(f"retries must be a non-negative integer, got {self.retries!r}")
         if self.backoff_s < 0:
             raise ValueError(f"backoff_s must be >= 0, got {self.backoff_s!r}")
+        if not 0 <= self.loop_delay_s <= 0.1:
+            raise ValueError(f"loop_delay_s must be between 0 and 0.1 s, got {self.loop_delay_s!r}")
         for name in ("connect_timeout_s", "acse_timeout_s", "dimse_timeout_s", "network_timeout_s"):
             if not getattr(self, name) > 0:
                 raise ValueError(f"{name} must be > 0 seconds, got {getattr(self, name)!r}")
@@ -688,6 +697,8 @@ class Sender:
         def on_conn_open(event: evt.Event) -> None:
             connected.set()
             set_tcp_nodelay(event)
+            if hasattr(event.assoc.dul, "_run_loop_delay"):  # pynetdicom 2.x-3.x
+                event.assoc.dul._run_loop_delay = self.settings.loop_delay_s
             if self.settings.guard_reactor_race:
                 guard_reactor_race(event)
 

@@ -219,6 +219,7 @@ def test_session_carries_several_batches_over_one_association(storescp: StoreSCP
         assert session.associations == 1
         assert [r.attempts[0].reused for r in reports] == [False, True, True, True]
         assert session.assoc is not None and session.assoc.is_established
+        assert session.assoc.dul._run_loop_delay == SendSettings().loop_delay_s
     assert session.assoc is None  # released on close
     assert all(r.ok and len(r.attempts) == 1 for r in reports)
     sent = {str(d.SOPInstanceUID) for d in [*mr, pm, sc]}
