@@ -136,6 +136,9 @@ def _param_layout(pools):
 #: (measured in tests/bench/bench_fits.py; 5 pools x 61 offsets x 128 voxels is 0.3 MB each).
 _CHUNK = 128
 
+#: ``J^T J`` and ``J^T r`` of the Lorentzian fits in float32 (see :func:`_residual_normal`).
+GRAM_F32 = True
+
 
 def _model_and_jac(params, x, with_jac):
     """Model ``c - sum L_i`` for params (n, 1 + 3K); pool 0 is water, positions of the others relative.
@@ -187,6 +190,88 @@ def _kernel(params, x, model, jac_t):
     jac_t[:, 2::3, :] = u2  # d model / dw = -2 L u^2 q / w
     np.multiply(t, u, out=jac_t[:, 3::3, :])  # d model / d(absolute position) = -2 L u q
     jac_t[:, 3, :] = jac_t[:, 3::3, :].sum(axis=1)  # the water position moves every pool
+
+
+class _Scratch:
+    """Work buffers of one chunk of :func:`_residual_normal`, allocated once per call."""
+
+    def __init__(self, n, k, n_off, n_par, f32):
+        self.u = np.empty((n, k, n_off))
+        self.q = np.empty((n, k, n_off))
+        self.u2 = np.empty((n, k, n_off))
+        self.lor = np.empty((n, k, n_off))
+        self.jt = np.empty((n, n_par + 1, n_off))  # rows: d model / d p, then the residual
+        self.jt[:, 0, :] = 1.0
+        dt = np.float32 if f32 else np.float64
+        self.jt_lo = np.empty((n, n_par + 1, n_off), dt) if f32 else self.jt
+        self.j = np.empty((n, n_off, n_par + 1), dt)
+        self.gram = np.empty((n, n_par + 1, n_par + 1), dt)
+
+
+def _residual_normal(params, x, data, weights=None, *, f32=GRAM_F32):
+    """Residuals ``w (model - data)`` (n, N), ``J^T J`` (n, P, P) and ``J^T r`` (n, P).
+
+    One fused pass per chunk of :data:`_CHUNK` voxels (the same formulas as :func:`_kernel`):
+    the Jacobian rows and the residual row are written into one ``(chunk, P + 1, N)`` buffer
+    and the Gram matrix of its rows, one batched matrix product, holds ``J^T J`` and ``J^T r``;
+    the Jacobian never leaves the cache. With ``f32`` that product is taken in float32 (the
+    residuals and everything the solver decides on stay float64).
+    """
+    params = np.asarray(params, dtype=np.float64)
+    n, n_par = params.shape
+    k = (n_par - 1) // 3
+    r = np.empty((n, x.size))
+    jtj = np.empty((n, n_par, n_par))
+    g = np.empty((n, n_par))
+    first = min(_CHUNK, n)
+    scratch = _Scratch(first, k, x.size, n_par, f32)
+    for s in range(0, n, _CHUNK):
+        e = min(s + _CHUNK, n)
+        sc = scratch if e - s == first else _Scratch(e - s, k, x.size, n_par, f32)
+        _normal_chunk(params[s:e], x, data[s:e], weights, r[s:e], jtj[s:e], g[s:e], sc, n_par)
+    return r, jtj, g
+
+
+def _normal_chunk(p, x, data, weights, r, jtj, g, sc, n_par):
+    c = p[:, 0:1]
+    a = p[:, 1::3]
+    w = p[:, 2::3]
+    d = p[:, 3::3].copy()
+    d[:, 1:] += d[:, :1]  # absolute positions
+    h2 = 0.25 * w * w
+    u, q, u2, lor, jt = sc.u, sc.q, sc.u2, sc.lor, sc.jt
+    np.subtract(x[None, None, :], d[:, :, None], out=u)
+    np.multiply(u, u, out=u2)
+    np.add(u2, h2[:, :, None], out=q)
+    np.reciprocal(q, out=q)
+    np.multiply(q, (a * h2)[:, :, None], out=lor)
+    res = jt[:, n_par, :]
+    np.subtract(c, lor[:, 0, :], out=res)
+    for i in range(1, lor.shape[1]):
+        res -= lor[:, i, :]
+    res -= data  # model - data
+    np.multiply(q, -h2[:, :, None], out=jt[:, 1:n_par:3, :])  # d model / dA
+    lor *= q
+    lor *= -2.0  # -2 L q
+    u2 *= lor
+    u2 /= w[:, :, None]
+    jt[:, 2:n_par:3, :] = u2  # d model / dw = -2 L u^2 q / w
+    pos = jt[:, 3:n_par:3, :]
+    np.multiply(lor, u, out=pos)  # d model / d(absolute position) = -2 L u q
+    for i in range(1, pos.shape[1]):  # the water position moves every pool
+        jt[:, 3, :] += pos[:, i, :]
+    if weights is not None:
+        jt *= weights
+    r[...] = res
+    jlo = sc.jt_lo
+    if jlo is not jt:
+        jlo[...] = jt
+    np.copyto(sc.j, jlo.transpose(0, 2, 1))
+    np.matmul(jlo, sc.j, out=sc.gram)
+    jtj[...] = sc.gram[:, :n_par, :n_par]
+    g[...] = sc.gram[:, :n_par, n_par]
+    if weights is not None:
+        jt[:, 0, :] = 1.0
 
 
 def z_model(offsets_ppm, params, pools=POOLS_5):
@@ -433,16 +518,15 @@ def initial_params(zf, offs, weights, start, lo, hi, lead, init, neighbourhood=3
 def _run_fit(zf, offs, weights, start, lo, hi, lead, init, neighbourhood, max_iter, p0=None):
     unweighted = bool(np.all(weights == 1.0))
 
-    def fun(p, i):  # residuals and Jacobian together: they share the model's subexpressions
-        m, j = _model_and_jac(p, offs, True)
-        if unweighted:
-            return m - zf[i], j
-        return (m - zf[i]) * weights, j * weights[None, :, None]
+    w = None if unweighted else weights
+
+    def fun(p, i):  # residuals and normal equations together, from one fused model pass
+        return _residual_normal(p, offs, zf[i], w)
 
     if p0 is None:
         p0 = initial_params(zf, offs, weights, start, lo, hi, lead, init, neighbourhood, max_iter)
     return least_squares_batch(
-        fun, p0, jac=True, lower=lo, upper=hi, max_iter=max_iter, ftol=FIT_TOL, xtol=FIT_TOL,
+        fun, p0, jac="normal", lower=lo, upper=hi, max_iter=max_iter, ftol=FIT_TOL, xtol=FIT_TOL,
         block_size=BLOCK, bound_approach=BOUND_APPROACH,
     )
 

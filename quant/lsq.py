@@ -18,9 +18,11 @@ diagonal of ``J^T J`` as in MINPACK's ``lmder``, Moré 1978, from memory):
   ``lambda *= nu``, ``nu *= 2``.
 
 Bounds (box constraints) are handled by **projection with an active set**: a parameter sitting
-on a bound whose gradient points out of the box is frozen for that iteration (its row and column
-of the normal equations are replaced by the identity, its step is 0), the others take the
-damped step, and the trial point is projected onto the box. The gain ratio uses the projected
+on a bound whose gradient points out of the box is frozen for that iteration (its step is 0:
+its diagonal in the damped normal equations gets ``1e12`` times its own weight, which holds it
+to 1e-12 relative while the others see it through their coupling, the reduced system without
+re-indexing; its step is then set to exactly 0), the others take the damped step, and the
+trial point is projected onto the box. The gain ratio uses the projected
 step, so a projected step that does not reduce the cost is rejected like any other. This keeps
 the parameters exactly inside the box (no transform, so no flattened Jacobian near a bound)
 and lets a fit rest on a bound; ``at_bound`` in the result says where that happened, so the
@@ -155,13 +157,15 @@ def least_squares_batch(
         ``index`` (``(n,)`` integers into ``0..V-1``); returns ``(n, M)``.
     p0 : array_like (V, P)
         Start values; projected onto the box first.
-    jac : callable or True, optional
+    jac : callable, True or 'normal', optional
         ``jac(params, index) -> (n, M, P)``, the Jacobian of the residuals, evaluated after
         each accepted step. ``True``: ``fun`` returns ``(residuals, jacobian)`` at every point
         it is called for (the convention of ``scipy.optimize.minimize(jac=True)``), so a model
         whose Jacobian shares subexpressions with its value is evaluated once per step; the
-        Jacobian of a rejected trial point is discarded. Forward finite differences
-        (:func:`finite_difference_jacobian`) when omitted.
+        Jacobian of a rejected trial point is discarded. ``'normal'``: ``fun`` returns
+        ``(residuals (n, M), J^T J (n, P, P), J^T r (n, P))``, so a model can form the normal
+        equations chunk by chunk while its Jacobian is in the cache (the solver needs no more).
+        Forward finite differences (:func:`finite_difference_jacobian`) when omitted.
     lower, upper : array_like (P,) or float, optional
         Box bounds (``-inf`` / ``inf`` by default).
     max_iter : int
@@ -232,20 +236,32 @@ def least_squares_batch(
 
 
 def _evaluate(fun, jac, p, index, lo, hi, n_res, n_par, eager):
-    """Residuals (and, when ``eager``, the Jacobian) at ``p`` for the voxels ``index``."""
+    """Residuals and, when ``eager``, the Jacobian (``eager == 'jac'``) or the normal equations
+    (``eager == 'normal'``) at ``p`` for the voxels ``index``."""
     if eager:
         out = fun(p, index)
-        if not (isinstance(out, tuple) and len(out) == 2):
-            raise ValueError("with jac=True, fun must return a tuple (residuals, jacobian)")
-        r, j = out
+        n_out = 3 if eager == "normal" else 2
+        if not (isinstance(out, tuple) and len(out) == n_out):
+            what = "(residuals, jtj, jtr)" if eager == "normal" else "(residuals, jacobian)"
+            raise ValueError(f"with jac={jac!r}, fun must return a tuple {what}")
+        r, extra = out[0], out[1:]
     else:
-        r, j = fun(p, index), None
+        r, extra = fun(p, index), None
     r = np.asarray(r, dtype=np.float64)
     if r.ndim != 2 or r.shape[0] != p.shape[0] or (n_res is not None and r.shape[1] != n_res):
         raise ValueError(f"fun must return residuals shaped (n, M), got shape {r.shape}")
-    if j is not None:
-        _check_jac(j, p.shape[0], r.shape[1], n_par)
-    return r, j
+    if eager == "jac":
+        _check_jac(extra[0], p.shape[0], r.shape[1], n_par)
+        extra = _normal_equations(np.asarray(extra[0], np.float64), r)
+    elif eager == "normal":
+        jtj, g = (np.asarray(a, np.float64) for a in extra)
+        if jtj.shape != (p.shape[0], n_par, n_par) or g.shape != (p.shape[0], n_par):
+            raise ValueError(
+                f"with jac='normal', fun must return jtj shaped {(p.shape[0], n_par, n_par)} and "
+                f"jtr shaped {(p.shape[0], n_par)}, got {jtj.shape} and {g.shape}"
+            )
+        extra = (jtj, g)
+    return r, extra
 
 
 def _check_jac(j, n, n_res, n_par):
@@ -264,16 +280,15 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
     finishes is written out and dropped (compaction), so late iterations cost what the few
     remaining voxels cost, without fancy indexing of the whole block at every step."""
     n, n_par = p0.shape
-    eager = jac is True
+    eager = "normal" if jac == "normal" else ("jac" if jac is True else None)
     p_out = np.clip(p0, lo, hi)
     p_out[~np.isfinite(p0)] = np.nan
-    r, j0 = _evaluate(fun, jac, p_out, index, lo, hi, None, n_par, eager)
+    r, ne0 = _evaluate(fun, jac, p_out, index, lo, hi, None, n_par, eager)
     n_res = r.shape[1]
     valid = np.all(np.isfinite(r), axis=1) & np.all(np.isfinite(p_out), axis=1)
     cost_out = 0.5 * np.einsum("vm,vm->v", r, r)
     status = np.where(valid, STATUS_MAXITER, STATUS_INVALID)
     iters = np.zeros(n, dtype=np.int64)
-    eye = np.eye(n_par)
     diag = np.arange(n_par)
     span = np.where(np.isfinite(hi - lo), hi - lo, 1.0)
     near_tol = 1e-3 * span  # closer than this to a bound, a crossing step lands on the bound
@@ -286,10 +301,10 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
     lam = np.full(pos.size, lambda0)
     nu = np.full(pos.size, 2.0)
     if eager:
-        jtj, grad = _normal_equations(np.asarray(j0, np.float64)[pos], r)
+        jtj, grad = ne0[0][pos], ne0[1][pos]
     else:
         jtj, grad = _jacobian_normal(fun, jac, p, index[pos], r, lo, hi, n_res, n_par)
-    del j0
+    del ne0
     dscale = jtj[:, diag, diag].copy()
     n_it = 0
     while pos.size and n_it < max_iter:
@@ -309,37 +324,44 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
             if pos.size == 0:
                 break
         d = np.maximum(dscale, 1e-12 * np.maximum(dscale.max(axis=1, keepdims=True), 1.0))
-        a_damped = jtj.copy()
-        a_damped[:, diag, diag] += lam[:, None] * d
-        a = a_damped
-        if frozen.any():  # frozen parameters: identity rows and columns, zero step
-            keep_f = (~frozen).astype(np.float64)
-            a = a_damped * (keep_f[:, :, None] * keep_f[:, None, :])
-            a[:, diag, diag] += frozen
+        a = jtj.copy()
+        a[:, diag, diag] += lam[:, None] * d
+        # a held parameter (frozen, or fixed by a crossing step below) gets a diagonal
+        # ``hold`` times its own: its step is then the prescribed value to 1e-12 relative and
+        # the others see it through their coupling, the reduced system without re-indexing
+        hold = _HOLD * (a[:, diag, diag] + d)
+        adiag = a[:, diag, diag]
+        if frozen.any():
+            a[:, diag, diag] = np.where(frozen, adiag + hold, adiag)
         step = _solve(a, -g_free)
+        step[frozen] = 0.0
         # a step that crosses a bound: hold those parameters (on the bound, or ``approach`` of
         # the way there) and re-solve for the others (a few passes), instead of clipping a
         # correlated step
         fixed = frozen.copy()
+        sub, a_sub = np.arange(p.shape[0]), a  # a later pass only revisits the voxels re-solved
         for _pass in range(3):
-            trial = p + step
-            crossing = ((trial < lo) | (trial > hi)) & ~fixed
-            cz = np.flatnonzero(crossing.any(axis=1))
-            if cz.size == 0:
+            trial = p[sub] + step[sub]
+            crossing = ((trial < lo) | (trial > hi)) & ~fixed[sub]
+            loc = np.flatnonzero(crossing.any(axis=1))
+            if loc.size == 0:
                 break
-            to_bound = np.clip(trial[cz], lo, hi) - p[cz]
+            cz = sub[loc]
+            to_bound = np.clip(trial[loc], lo, hi) - p[cz]
             if approach < 1.0:
                 to_bound = np.where(np.abs(to_bound) > near_tol, approach * to_bound, to_bound)
-            dc = np.where(crossing[cz], to_bound, 0.0)
-            held = np.where(fixed[cz], step[cz], 0.0) + dc  # steps of all held parameters
-            a_c = a_damped[cz]
-            rhs = -g_free[cz] - (a_c @ held[:, :, None])[:, :, 0]
-            fixed[cz] |= crossing[cz]
-            keep_c = (~fixed[cz]).astype(np.float64)
-            a_c *= keep_c[:, :, None] * keep_c[:, None, :]
-            a_c += fixed[cz][:, :, None] * eye
-            rhs = np.where(fixed[cz], held, rhs)
-            step[cz] = _solve(a_c, rhs)
+            cc = crossing[loc]
+            held = np.where(fixed[cz], step[cz], 0.0) + np.where(cc, to_bound, 0.0)
+            fz = fixed[cz] | cc
+            fixed[cz] = fz
+            a_c = a_sub[loc]
+            ad = a_c[:, diag, diag]
+            # frozen ones already carry ``hold`` on the diagonal
+            ad = np.where(cc, ad + hold[cz], ad)
+            a_c[:, diag, diag] = ad
+            rhs = np.where(fz, ad * held, -g_free[cz])
+            step[cz] = np.where(fz, held, _solve(a_c, rhs))
+            sub, a_sub = cz, a_c
         # what still crosses a bound is projected (``approach`` of the way to the bound)
         p_new = np.clip(p + step, lo, hi)
         if approach < 1.0:
@@ -347,7 +369,7 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
             cut = (p_new != p + step) & (np.abs(to_bound) > near_tol)
             p_new = np.where(cut, p + approach * to_bound, p_new)
         delta = p_new - p
-        r_new, j_new = _evaluate(fun, jac, p_new, index[pos], lo, hi, n_res, n_par, eager)
+        r_new, ne_new = _evaluate(fun, jac, p_new, index[pos], lo, hi, n_res, n_par, eager)
         cost_new = 0.5 * np.einsum("vm,vm->v", r_new, r_new)
         cost_new[~np.isfinite(cost_new)] = np.inf
         # predicted reduction of the linear model: -(g.d + 0.5 d^T JtJ d)
@@ -377,15 +399,17 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
         # normal equations at the accepted points that go on
         k = accept & going
         if np.any(k):
-            if eager:  # from the Jacobian computed with the trial residuals
-                jtj_k, grad_k = _normal_equations(np.asarray(j_new, np.float64)[k], r_new[k])
+            if eager:  # computed with the trial residuals: copied in place, no gather
+                np.copyto(jtj, ne_new[0], where=k[:, None, None])
+                np.copyto(grad, ne_new[1], where=k[:, None])
+                np.maximum(dscale, jtj[:, diag, diag], out=dscale, where=k[:, None])
             else:
                 kk = np.flatnonzero(k)
                 jtj_k, grad_k = _jacobian_normal(fun, jac, p[kk], index[pos[kk]], r[kk], lo, hi,
                                                  n_res, n_par)
-            jtj[k], grad[k] = jtj_k, grad_k
-            dscale[k] = np.maximum(dscale[k], jtj_k[:, diag, diag])
-        del j_new
+                jtj[k], grad[k] = jtj_k, grad_k
+                dscale[k] = np.maximum(dscale[k], jtj_k[:, diag, diag])
+        del ne_new
         if not going.all():  # finished voxels: write out, drop from the working arrays
             done = ~going
             p_out[pos[done]] = p[done]
@@ -398,6 +422,10 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
     cost_out[~valid] = np.nan
     rms = np.sqrt(2.0 * cost_out / n_res)
     return p_out, cost_out, rms, iters, status
+
+
+#: Diagonal weight that holds a parameter at a prescribed step (relative to its damped diagonal)
+_HOLD = 1e12
 
 
 def _jacobian_normal(fun, jac, p, index, r, lo, hi, n_res, n_par):

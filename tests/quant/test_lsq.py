@@ -60,13 +60,22 @@ def _ref_fit(y, p0, i):
     return least_squares(f, p0[i], jac=j, bounds=(LO, HI), ftol=1e-12, xtol=1e-12, gtol=1e-12)
 
 
+def _normal(p, y):
+    r = lorentz_model(p) - y
+    j = lorentz_jac(p)
+    return r, np.einsum("vmp,vmq->vpq", j, j), np.einsum("vmp,vm->vp", j, r)
+
+
 @pytest.mark.parametrize(
-    "mode, approach", [("analytic", 1.0), ("finite", 1.0), ("with_fun", 1.0), ("with_fun", 0.5)]
+    "mode, approach",
+    [("analytic", 1.0), ("finite", 1.0), ("with_fun", 1.0), ("with_fun", 0.5), ("normal", 0.5)],
 )
 def test_same_optimum_as_scipy_least_squares(problem, mode, approach):
     y, p0 = problem
     if mode == "with_fun":  # jac=True: fun returns residuals and Jacobian together
         fun, jac = (lambda p, i: (lorentz_model(p) - y[i], lorentz_jac(p))), True
+    elif mode == "normal":  # jac='normal': fun returns residuals and the normal equations
+        fun, jac = (lambda p, i: _normal(p, y[i])), "normal"
     else:
         fun = lambda p, i: lorentz_model(p) - y[i]  # noqa: E731
         jac = (lambda p, i: lorentz_jac(p)) if mode == "analytic" else None
@@ -155,5 +164,12 @@ def test_bad_arguments_name_the_problem():
         least_squares_batch(f, np.ones((2, 4)), bound_approach=0.0)
     with pytest.raises(ValueError, match=r"with jac=True, fun must return a tuple"):
         least_squares_batch(f, np.ones((2, 4)), jac=True)
+    with pytest.raises(ValueError, match=r"with jac='normal', fun must return a tuple"):
+        least_squares_batch(lambda p, i: (lorentz_model(p), 0), np.ones((2, 4)), jac="normal")
+    with pytest.raises(ValueError, match=r"with jac='normal', fun must return jtj shaped"):
+        least_squares_batch(
+            lambda p, i: (lorentz_model(p), np.zeros((2, 3, 3)), np.zeros((2, 3))),
+            np.ones((2, 4)), jac="normal",
+        )
     with pytest.raises(ValueError, match=r"fun must return residuals shaped \(n, M\)"):
         least_squares_batch(lambda p, i: np.zeros(2), np.ones((2, 4)))
