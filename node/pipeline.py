@@ -7,6 +7,7 @@ arrays, calls the pure functions, and hands back maps with what the derive build
 from __future__ import annotations
 
 import os
+import threading
 import time
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
@@ -17,7 +18,7 @@ import numpy as np
 
 import quant
 from quant.motion import register_frames
-from quant.registry import METHODS
+from quant.registry import METHODS, band_columns
 from quant.wassr import wassr_shift
 
 if TYPE_CHECKING:
@@ -40,16 +41,21 @@ class FrameMotion:
 
 @dataclass
 class Prepared:
-    """The Z-spectra of a series after normalisation and B0 correction.
+    """The Z-spectra of a series after normalisation, with their B0 shift.
 
-    The spectra are kept for the brain voxels only: ``zv`` is ``(n_voxels, n_sat)``, row ``i``
-    the voxel at flat index ``index[i]`` of the ``(slices, rows, cols)`` volume (``index`` is
-    ``flatnonzero(mask)``), NaN where the B0 shift could not be corrected; ``offsets_ppm`` are
-    sorted; ``m0`` is the reference image. :attr:`z` gives the whole volume (NaN outside the
-    mask), built on first use: the methods work on ``zv`` and never need it.
+    The spectra are kept for the brain voxels only: ``zv_uncorrected`` is
+    ``(n_voxels, n_sat)``, row ``i`` the voxel at flat index ``index[i]`` of the
+    ``(slices, rows, cols)`` volume (``index`` is ``flatnonzero(mask)``); ``shift_v`` is each
+    row's B0 shift. The B0-corrected rows :attr:`zv` (NaN where the shift could not be
+    corrected) are computed on first use, for the methods that read the whole spectrum (the
+    fits of the deferred pass); the model-free methods read a few offsets only and get just
+    the columns around them (:meth:`band`), so the budget-bound pass never resamples the
+    whole spectrum. ``offsets_ppm`` are sorted; ``m0`` is the reference image; :attr:`z` is
+    the whole volume (NaN outside the mask), built on first use.
     """
 
-    zv: np.ndarray
+    zv_uncorrected: np.ndarray
+    shift_v: np.ndarray
     index: np.ndarray
     offsets_ppm: np.ndarray
     m0: np.ndarray
@@ -57,8 +63,6 @@ class Prepared:
     shift_ppm: np.ndarray
     valid: np.ndarray
     seconds: dict[str, float]
-    zv_uncorrected: np.ndarray | None = None
-    """``zv`` before the B0 correction (the methods that model the water line take it)."""
     saturation: dict[str, float] = field(default_factory=dict)
     t1_s: np.ndarray | None = None
     """T1 (s) per voxel from a T1 companion, NaN where unknown; None without one."""
@@ -72,19 +76,66 @@ class Prepared:
     """``"internal"`` (estimated from the Z-spectra) or ``"wassr"``."""
     m0_source: str = "series"
     """``"series"`` (the series' own M0 frames) or ``"companion"``."""
-    _volumes: dict[str, np.ndarray] = field(default_factory=dict, repr=False, compare=False)
+    corrected: np.ndarray | None = field(default=None, repr=False)
+    """The B0-corrected rows once computed (or given: :meth:`of_voxels`)."""
+    given: bool = False
+    """``corrected`` was given, not computed from ``zv_uncorrected`` and ``shift_v``."""
+    _cache: dict[object, object] = field(default_factory=dict, repr=False, compare=False)
+    _lock: threading.Lock = field(default_factory=threading.Lock, repr=False, compare=False)
+
+    def __getstate__(self) -> dict[str, object]:
+        """Picklable (the Dask engine ships jobs): without the lock and the cached views."""
+        state = dict(self.__dict__)
+        state["_lock"] = None
+        state["_cache"] = {}
+        return state
+
+    def __setstate__(self, state: dict[str, object]) -> None:
+        self.__dict__.update(state)
+        self._lock = threading.Lock()
 
     @classmethod
     def of_voxels(cls, z: np.ndarray, offsets_ppm: np.ndarray, *,
                   z_uncorrected: np.ndarray | None = None,
                   saturation: dict[str, float] | None = None) -> Prepared:
         """Spectra ``(n, n_sat)`` taken as they are (every voxel valid, no shift): a chunk of
-        voxels on a worker (:mod:`node.distributed`)."""
+        voxels on a worker (:mod:`node.distributed`); ``z`` is taken as corrected."""
         n = z.shape[0]
-        return cls(zv=z, index=np.arange(n), offsets_ppm=offsets_ppm,
+        zero = np.zeros(n, dtype=z.dtype)
+        return cls(zv_uncorrected=z if z_uncorrected is None else z_uncorrected, shift_v=zero,
+                   index=np.arange(n), offsets_ppm=offsets_ppm,
                    m0=np.ones(n, dtype=z.dtype), mask=np.ones(n, dtype=bool),
-                   shift_ppm=np.zeros(n, dtype=z.dtype), valid=np.ones(n, dtype=bool),
-                   seconds={}, zv_uncorrected=z_uncorrected, saturation=dict(saturation or {}))
+                   shift_ppm=zero, valid=np.ones(n, dtype=bool), seconds={},
+                   saturation=dict(saturation or {}), corrected=z, given=True)
+
+    @property
+    def zv(self) -> np.ndarray:
+        """``(n_voxels, n_sat)`` B0-corrected rows (computed on first use)."""
+        with self._lock:
+            if self.corrected is None:
+                t0 = time.perf_counter()
+                self.corrected = _correct_rows(self.zv_uncorrected, self.offsets_ppm,
+                                               self.shift_v).z
+                self.seconds["b0_resample"] = time.perf_counter() - t0
+            return self.corrected
+
+    def band(self, reads_ppm: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray]:
+        """The B0-corrected rows at the columns a method reading ``reads_ppm`` needs
+        (:func:`quant.registry.band_columns`) and their offsets. The same values as those
+        columns of :attr:`zv` (the same spline, evaluated at fewer points)."""
+        cols = band_columns(self.offsets_ppm, reads_ppm)
+        key = ("band", tuple(cols.tolist()))
+        with self._lock:
+            if key not in self._cache:
+                if self.given:
+                    assert self.corrected is not None
+                    self._cache[key] = self.corrected[:, cols]
+                else:
+                    self._cache[key] = _correct_rows(self.zv_uncorrected, self.offsets_ppm,
+                                                     self.shift_v, columns=cols).z
+            band = self._cache[key]
+        assert isinstance(band, np.ndarray)
+        return band, self.offsets_ppm[cols]
 
     def volume(self, rows: np.ndarray) -> np.ndarray:
         """Per-voxel rows ``(n_voxels, ...)`` scattered into the volume, NaN elsewhere."""
@@ -95,18 +146,20 @@ class Prepared:
     @property
     def z(self) -> np.ndarray:
         """``(slices, rows, cols, n_sat)`` B0-corrected spectra, NaN outside the mask."""
-        if "z" not in self._volumes:
-            self._volumes["z"] = self.volume(self.zv)
-        return self._volumes["z"]
+        if "z" not in self._cache:
+            self._cache["z"] = self.volume(self.zv)
+        z = self._cache["z"]
+        assert isinstance(z, np.ndarray)
+        return z
 
     @property
-    def z_uncorrected(self) -> np.ndarray | None:
-        """:attr:`z` before the B0 correction (None when not kept)."""
-        if self.zv_uncorrected is None:
-            return None
-        if "zu" not in self._volumes:
-            self._volumes["zu"] = self.volume(self.zv_uncorrected)
-        return self._volumes["zu"]
+    def z_uncorrected(self) -> np.ndarray:
+        """:attr:`z` before the B0 correction."""
+        if "zu" not in self._cache:
+            self._cache["zu"] = self.volume(self.zv_uncorrected)
+        z = self._cache["zu"]
+        assert isinstance(z, np.ndarray)
+        return z
 
 
 @dataclass
@@ -193,12 +246,15 @@ def prepare(
                              f"{mask.shape}")
         shift = shift.astype(zv.dtype, copy=False)
         given_v = shift.reshape(-1)[index]
-    b0 = _correct_rows(zv, spec.offsets_ppm, given_v)
-    if b0_shift_ppm is None:
+    if given_v is None:
+        shift_v = _estimate_rows(zv, spec.offsets_ppm)
         shift = np.full(mask.shape, np.nan, dtype=zv.dtype)
-        shift.reshape(-1)[index] = b0.shift_ppm
+        shift.reshape(-1)[index] = shift_v
+    else:
+        shift_v = given_v
     valid = np.zeros(mask.shape, dtype=bool)
-    valid.reshape(-1)[index] = b0.valid
+    # as quant.correct_b0 has it: the shift known and the spectrum finite
+    valid.reshape(-1)[index] = np.isfinite(shift_v) & np.all(np.isfinite(zv), axis=-1)
     seconds["b0"] = time.perf_counter() - t1
     b1_outside = None
     if b1_rel is not None:
@@ -210,8 +266,8 @@ def prepare(
     if t1_s is not None and np.shape(t1_s) != mask.shape:
         raise ValueError(f"t1_s has shape {np.shape(t1_s)}, the series {mask.shape}")
     return Prepared(
-        zv=b0.z, index=index, offsets_ppm=spec.offsets_ppm, m0=ref, mask=mask,
-        shift_ppm=shift, valid=valid, seconds=seconds, zv_uncorrected=zv,
+        zv_uncorrected=zv, shift_v=shift_v, index=index, offsets_ppm=spec.offsets_ppm,
+        m0=ref, mask=mask, shift_ppm=shift, valid=valid, seconds=seconds,
         saturation=dict(saturation or {}),
         t1_s=None if t1_s is None else np.asarray(t1_s, dtype=np.float32),
         b1_rel=b1_rel, b1_outside=b1_outside, motion=motion,
@@ -225,20 +281,42 @@ def prepare(
 PARALLEL_MIN_ROWS = 16384
 
 
-def _correct_rows(zv: np.ndarray, offsets_ppm: np.ndarray,
-                  shift_v: np.ndarray | None) -> quant.B0Result:
-    """:func:`quant.correct_b0` of the rows ``zv`` (the shift estimated when ``shift_v`` is
-    None), split over the machine's cores: the estimate and the spline are per voxel and
-    numpy releases the GIL in them, so the row blocks run in parallel threads (measured
-    here, 175,000 voxels x 60 offsets on 2 cores: about 1.7 x faster)."""
-    workers = min(os.cpu_count() or 1, 4, max(1, zv.shape[0] // PARALLEL_MIN_ROWS))
+def _workers(rows: int) -> int:
+    return min(os.cpu_count() or 1, 4, max(1, rows // PARALLEL_MIN_ROWS))
+
+
+def _parts(rows: int, workers: int) -> list[slice]:
+    bounds = np.linspace(0, rows, workers + 1).astype(int)
+    return [slice(a, b) for a, b in zip(bounds[:-1], bounds[1:], strict=True)]
+
+
+def _estimate_rows(zv: np.ndarray, offsets_ppm: np.ndarray) -> np.ndarray:
+    """:func:`quant.estimate_b0_shift` of the rows ``zv``, in row blocks on the machine's
+    cores (per voxel, and numpy releases the GIL in it: bit-identical to one thread)."""
+    workers = _workers(zv.shape[0])
     if workers == 1:
-        return quant.correct_b0(zv, offsets_ppm, shift_ppm=shift_v)
-    bounds = np.linspace(0, zv.shape[0], workers + 1).astype(int)
-    parts = [slice(a, b) for a, b in zip(bounds[:-1], bounds[1:], strict=True)]
+        return quant.estimate_b0_shift(zv, offsets_ppm)
     with ThreadPoolExecutor(max_workers=workers, thread_name_prefix="cest-b0") as pool:
-        done = list(pool.map(lambda p: quant.correct_b0(
-            zv[p], offsets_ppm, shift_ppm=None if shift_v is None else shift_v[p]), parts))
+        done = list(pool.map(lambda p: quant.estimate_b0_shift(zv[p], offsets_ppm),
+                             _parts(zv.shape[0], workers)))
+    return np.concatenate(done)
+
+
+def _correct_rows(zv: np.ndarray, offsets_ppm: np.ndarray, shift_v: np.ndarray, *,
+                  columns: np.ndarray | None = None) -> quant.B0Result:
+    """:func:`quant.correct_b0` of the rows ``zv`` with their shift (at ``columns`` only,
+    when given), in row blocks on the machine's cores as :func:`_estimate_rows`."""
+    def one(p: slice) -> quant.B0Result:
+        if columns is None:
+            return quant.correct_b0(zv[p], offsets_ppm, shift_ppm=shift_v[p])
+        z = quant.resample_shifted(zv[p], offsets_ppm, shift_v[p], columns=columns)
+        return quant.B0Result(z=z, shift_ppm=shift_v[p], valid=np.isfinite(shift_v[p]))
+
+    workers = _workers(zv.shape[0])
+    if workers == 1:
+        return one(slice(None))
+    with ThreadPoolExecutor(max_workers=workers, thread_name_prefix="cest-b0") as pool:
+        done = list(pool.map(one, _parts(zv.shape[0], workers)))
     return quant.B0Result(z=np.concatenate([d.z for d in done]),
                           shift_ppm=np.concatenate([d.shift_ppm for d in done]),
                           valid=np.concatenate([d.valid for d in done]))
@@ -325,18 +403,24 @@ def compute(
     info = METHODS[name]
     if t1_s is None:
         t1_s = prep.t1_s
-    zv = prep.zv if info.needs_b0 or prep.zv_uncorrected is None else prep.zv_uncorrected
+    offsets = prep.offsets_ppm
+    if not info.needs_b0:
+        zv = prep.zv_uncorrected
+    elif info.reads_ppm is not None:
+        zv, offsets = prep.band(info.reads_ppm)
+    else:
+        zv = prep.zv
     t1_v = None if t1_s is None else np.asarray(t1_s).reshape(-1)[prep.index]
     t0 = time.perf_counter()
     if chunk_voxels is None:
-        rows = _call(info, zv, prep.offsets_ppm, t1_v, prep.saturation)
+        rows = _call(info, zv, offsets, t1_v, prep.saturation)
     else:
         rows = np.full(zv.shape[0], np.nan, dtype=np.float32)
         for start in range(0, zv.shape[0], chunk_voxels):
             if between_chunks is not None and not between_chunks(start, zv.shape[0]):
                 raise Abandoned(f"{name} abandoned after {start} of {zv.shape[0]} voxels")
             end = start + chunk_voxels
-            rows[start:end] = _call(info, zv[start:end], prep.offsets_ppm,
+            rows[start:end] = _call(info, zv[start:end], offsets,
                                     None if t1_v is None else t1_v[start:end], prep.saturation)
     values = prep.volume(rows)
     seconds = time.perf_counter() - t0

@@ -165,7 +165,8 @@ def _natural_spline_operator(knots: tuple[float, ...]) -> NDArray[np.float64]:
 
 
 def resample_shifted(
-    z: ArrayLike, offsets_ppm: ArrayLike, shift_ppm: ArrayLike
+    z: ArrayLike, offsets_ppm: ArrayLike, shift_ppm: ArrayLike, *,
+    columns: ArrayLike | None = None,
 ) -> NDArray[np.floating]:
     """Evaluate every voxel's natural cubic spline at ``offsets_ppm + shift_ppm``.
 
@@ -173,10 +174,13 @@ def resample_shifted(
     ----------
     z : (..., n) with ascending ``offsets_ppm`` (n,).
     shift_ppm : (...) per-voxel shift (NaN gives a NaN voxel).
+    columns : optional ascending indices of the offsets to evaluate (the spline is still
+        that of all ``n`` samples); by default all.
 
     Returns
     -------
-    (..., n), dtype of ``z``; NaN where the position falls outside the sampled range.
+    (..., n) or (..., len(columns)), dtype of ``z``; NaN where the position falls outside the
+    sampled range.
 
     Notes
     -----
@@ -196,22 +200,28 @@ def resample_shifted(
     if s.shape != vshape:
         raise ValueError(f"shift_ppm has shape {s.shape} but the spectra's voxels are {vshape}")
     n = off.size
+    cols = np.arange(n) if columns is None else np.asarray(columns, dtype=np.intp)
+    if cols.ndim != 1 or (cols.size and (cols.min() < 0 or cols.max() >= n
+                                         or np.any(np.diff(cols) <= 0))):
+        raise ValueError(f"columns must be ascending indices into the {n} offsets")
     y = zz.reshape(-1, n)
     sv = s.reshape(-1).astype(dt)
     op = _natural_spline_operator(tuple(off.tolist())).astype(dt)
     h = np.diff(off)
     if np.allclose(h, h[0], rtol=1e-6, atol=0):
-        out = _resample_uniform(y, op, sv, float(np.mean(h)), dt)
+        out = _resample_uniform(y, op, sv, float(np.mean(h)), dt, cols)
     else:
-        out = _resample_general(y, y @ op.T, sv, off.astype(dt), dt)
-    return out.reshape(zz.shape)
+        out = _resample_general(y, y @ op.T, sv, off.astype(dt), dt, cols)
+    return out.reshape(*zz.shape[:-1], cols.size)
 
 
 def _resample_uniform(
-    y: NDArray[np.floating], op: NDArray[np.floating], sv: NDArray[np.floating], h: float, dt: np.dtype
+    y: NDArray[np.floating], op: NDArray[np.floating], sv: NDArray[np.floating], h: float,
+    dt: np.dtype, cols: NDArray[np.intp],
 ) -> NDArray[np.floating]:
     n = y.shape[1]
-    out = np.full(y.shape, np.nan, dtype=dt)
+    full = cols.size == n
+    out = np.full((y.shape[0], cols.size), np.nan, dtype=dt)
     finite = np.isfinite(sv)
     q = np.where(finite, sv / h, 0.0).astype(np.float64)
     mi = np.floor(q)
@@ -235,44 +245,58 @@ def _resample_uniform(
         m = k // 2
         if abs(m) >= n:
             continue
+        if full:
+            lo, hi = max(0, -m), min(n, n - 1 - m)  # columns whose interval lies inside
+            src = np.arange(lo, hi)  # output columns lo..hi-1 read samples lo+m..hi-1+m
+        else:
+            src = cols[(cols + m >= 0) & (cols + m <= n - 2)]
         for r0 in range(g0, g1, _ROWS):  # row blocks: gather, spline, evaluate in cache
             sel = order[r0 : min(r0 + _ROWS, g1)]
             yg = y[sel]
             if k % 2:  # exactly on the knots: the samples moved by m columns
-                lo, hi = max(0, -m), min(n, n - m)
-                blk = np.full(yg.shape, np.nan, dtype=dt)
-                blk[:, lo:hi] = yg[:, lo + m : hi + m]
+                blk = np.full((sel.size, cols.size), np.nan, dtype=dt)
+                ok = (cols + m >= 0) & (cols + m < n)
+                blk[:, ok] = yg[:, cols[ok] + m]
                 out[sel] = blk
                 continue
-            lo, hi = max(0, -m), min(n, n - 1 - m)  # columns whose interval lies inside
-            if hi <= lo:
+            if src.size == 0:
                 continue
-            mg = yg @ opt
             b = f[sel].astype(dt)[:, None]
             a = 1.0 - b
             ca = (a * a * a - a) * h2
             cb = (b * b * b - b) * h2
-            j0, j1 = lo + m, hi + m
-            blk = np.full(yg.shape, np.nan, dtype=dt)
-            res = blk[:, lo:hi]
-            np.multiply(yg[:, j0:j1], a, out=res)
-            res += yg[:, j0 + 1 : j1 + 1] * b
-            res += mg[:, j0:j1] * ca
-            res += mg[:, j0 + 1 : j1 + 1] * cb
+            blk = np.full((sel.size, cols.size), np.nan, dtype=dt)
+            if full:
+                mg = yg @ opt
+                lo, hi = int(src[0]), int(src[-1]) + 1
+                j0, j1 = lo + m, hi + m
+                res = blk[:, lo:hi]
+                np.multiply(yg[:, j0:j1], a, out=res)
+                res += yg[:, j0 + 1 : j1 + 1] * b
+                res += mg[:, j0:j1] * ca
+                res += mg[:, j0 + 1 : j1 + 1] * cb
+            else:
+                knots = np.unique(np.concatenate([src + m, src + m + 1]))
+                mg = yg @ opt[:, knots]  # second derivatives at the knots used only
+                at = np.searchsorted(knots, src + m)
+                pos = np.searchsorted(cols, src)
+                blk[:, pos] = (yg[:, src + m] * a + yg[:, src + m + 1] * b
+                               + mg[:, at] * ca + mg[:, at + 1] * cb)
             out[sel] = blk
     return out
 
 
 def _resample_general(
-    y: NDArray[np.floating], m2: NDArray[np.floating], sv: NDArray[np.floating], xs: NDArray[np.floating], dt: np.dtype
+    y: NDArray[np.floating], m2: NDArray[np.floating], sv: NDArray[np.floating], xs: NDArray[np.floating], dt: np.dtype,
+    cols: NDArray[np.intp],
 ) -> NDArray[np.floating]:
     n = y.shape[1]
-    out = np.empty(y.shape, dtype=dt)
+    out = np.empty((y.shape[0], cols.size), dtype=dt)
     h = np.diff(xs)
     step = 16384
     for r0 in range(0, y.shape[0], step):
         r1 = min(r0 + step, y.shape[0])
-        pos = xs[None, :] + sv[r0:r1, None]
+        pos = xs[cols][None, :] + sv[r0:r1, None]
         j = np.searchsorted(xs, pos.ravel(), side="right").reshape(pos.shape) - 1
         np.clip(j, 0, n - 2, out=j)
         hj = h[j]

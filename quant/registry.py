@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from quant.measures import apt_star, arex, mtr_asym, mtr_asym_t1
+from quant.measures import APT_BAND_PPM, APT_OFFSET_PPM, apt_star, arex, mtr_asym, mtr_asym_t1
 
 __all__ = ["MethodInfo", "METHODS", "PRIMARY_METHOD", "PREPARE_COST_S_PER_VOXEL", "register", "get_method"]
 
@@ -41,6 +41,10 @@ class MethodInfo:
         water shift themselves (they get the uncorrected spectra).
     needs_saturation : True when ``compute`` also takes the saturation parameters
         ``b1_ut``, ``tsat_s`` and ``field_t`` as keyword arguments (Bloch-McConnell fits).
+    reads_ppm : the offsets whose Z ``compute`` evaluates, when it reads only a few (each is
+        interpolated from its four nearest samples, :func:`quant.measures.z_at`); a caller
+        may then pass only the columns around them (:func:`band_columns`). None: the whole
+        spectrum.
     """
 
     name: str
@@ -52,6 +56,7 @@ class MethodInfo:
     compute: Compute
     needs_b0: bool = True
     needs_saturation: bool = False
+    reads_ppm: tuple[float, ...] | None = None
 
     def __post_init__(self) -> None:
         if not self.name or not self.name.replace("_", "").isalnum():
@@ -106,7 +111,33 @@ PREPARE_COST_S_PER_VOXEL = 2e-6
 """Seconds per voxel of the shared preparation (normalise, estimate and correct B0), measured
 by the same benchmark and rounded up; it is paid once per series, not per method."""
 
-register(MethodInfo("mtr_asym", "MTRasym 3.5 ppm (B0-corrected)", "%", False, True, 3e-8, _mtr_asym))
-register(MethodInfo("mtr_asym_t1", "MTRasym / T1 3.5 ppm", "%/s", True, True, 3e-8, _mtr_asym_t1))
-register(MethodInfo("apt_star", "APT* linear reference 3.5 ppm", "%", False, True, 3e-8, _apt_star))
-register(MethodInfo("arex", "AREX 3.5 ppm", "%/s", True, True, 4e-8, _arex))
+def band_columns(offsets_ppm: Any, reads_ppm: tuple[float, ...], *, margin: int = 1) -> NDArray[np.intp]:
+    """The columns of ascending ``offsets_ppm`` a method with ``reads_ppm`` needs: for each
+    offset read, its four nearest samples (the interpolation of :func:`quant.measures.z_at`)
+    and ``margin`` more on each side, so that the same four are the nearest among the
+    columns kept. Ascending, without repeats.
+
+    Examples
+    --------
+    >>> band_columns(np.arange(-5.0, 5.5, 0.5), (3.5,)).tolist()
+    [14, 15, 16, 17, 18, 19]
+    """
+    off = np.asarray(offsets_ppm, dtype=np.float64)
+    keep: set[int] = set()
+    for t in reads_ppm:
+        k = int(np.searchsorted(off, t))
+        lo, hi = k - 2 - margin, k + 1 + margin
+        keep.update(j for j in range(lo, hi + 1) if 0 <= j < off.size)
+    return np.asarray(sorted(keep), dtype=np.intp)
+
+
+APT_READS = (-APT_OFFSET_PPM, APT_OFFSET_PPM)
+APT_STAR_READS = (APT_BAND_PPM[0], APT_OFFSET_PPM, APT_BAND_PPM[1])
+
+register(MethodInfo("mtr_asym", "MTRasym 3.5 ppm (B0-corrected)", "%", False, True, 3e-8, _mtr_asym,
+                    reads_ppm=APT_READS))
+register(MethodInfo("mtr_asym_t1", "MTRasym / T1 3.5 ppm", "%/s", True, True, 3e-8, _mtr_asym_t1,
+                    reads_ppm=APT_READS))
+register(MethodInfo("apt_star", "APT* linear reference 3.5 ppm", "%", False, True, 3e-8, _apt_star,
+                    reads_ppm=APT_STAR_READS))
+register(MethodInfo("arex", "AREX 3.5 ppm", "%/s", True, True, 4e-8, _arex, reads_ppm=APT_READS))

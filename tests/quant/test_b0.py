@@ -6,7 +6,9 @@ from scipy.interpolate import CubicSpline
 
 from quant.b0 import correct_b0, estimate_b0_shift, hz_to_ppm, resample_shifted
 from quant.bloch import cw_z
+from quant.measures import apt_star, mtr_asym
 from quant.phantom import LABEL_GM, LABEL_WM, _tissue_for, make_phantom
+from quant.registry import band_columns
 from quant.spectra import normalize
 
 UNIFORM = np.round(np.linspace(-5.9, 5.9, 60), 10)
@@ -104,3 +106,28 @@ def test_bad_input_names_the_problem():
         correct_b0(z, [-2.0, -1.0, 0.0, 1.0, 2.0], shift_ppm=np.zeros(3))
     with pytest.raises(ValueError, match="fewer than 3 points"):
         estimate_b0_shift(z, [-5.0, -4.0, 0.0, 4.0, 5.0])
+
+
+@pytest.mark.parametrize("uniform", [True, False])
+def test_resample_at_some_columns_is_those_columns_of_the_whole(uniform):
+    """``columns=`` evaluates the same natural spline (of all samples) at fewer points: the
+    values equal those columns of the whole resample, NaN included (the whole resample is
+    checked against scipy's CubicSpline above)."""
+    rng = np.random.default_rng(5)
+    off = (np.linspace(-6, 6, 61) if uniform
+           else np.sort(np.concatenate([np.linspace(-6, 6, 40), rng.uniform(-5.9, 5.9, 11)])))
+    z = rng.uniform(0.1, 1.0, (3000, off.size)).astype(np.float32)
+    shift = rng.uniform(-0.9, 0.9, 3000).astype(np.float32)
+    shift[::7] = np.nan
+    shift[::11] = 0.0
+    shift[::13] = 2 * (off[1] - off[0])  # on the knots
+    cols = band_columns(off, (-3.5, 2.7, 3.5, 4.3))
+    whole = resample_shifted(z, off, shift)
+    part = resample_shifted(z, off, shift, columns=cols)
+    assert part.shape == (3000, cols.size)
+    np.testing.assert_array_equal(part, whole[:, cols])
+    # and the measures read the same values from the band as from the whole spectrum
+    for f in (mtr_asym, apt_star):
+        np.testing.assert_array_equal(f(part, off[cols]), f(whole, off))
+    with pytest.raises(ValueError, match="ascending"):
+        resample_shifted(z, off, shift, columns=cols[::-1])
