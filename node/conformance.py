@@ -233,8 +233,9 @@ def statement(config: NodeConfig | None = None) -> str:
         "acknowledged and ignored.")
     add("2. **Process and send** (SCU): when a series is complete (expected count reached, "
         "or the idle timeout), the node computes the protocol's maps and sends every derived "
-        "object to every configured destination, one association per destination per "
-        "batch, retrying what is not acknowledged.")
+        "object to every configured destination, each output kind as soon as it is built, "
+        "over one association per destination for the whole pass (one per batch for the "
+        "deferred model-based pass), retrying what is not acknowledged.")
     add("3. **Reprocess from an archive** (SCU, `cest-node process --query`): C-FIND at "
         "STUDY and SERIES level for a date range, C-GET of the matching series, processing, "
         "C-STORE of the results back to the archive.")
@@ -324,10 +325,14 @@ def statement(config: NodeConfig | None = None) -> str:
 
     add("#### 3.2.4 Association initiation policy (SCU)")
     add("")
-    add("**Send derived objects** (C-STORE). For each batch (the outputs of one method of one "
-        "series) the node opens one association per destination and proposes one "
-        "presentation context per SOP class and transfer syntax present, with Implicit VR "
-        "Little Endian added as a fallback to an uncompressed syntax. The objects it creates:")
+    add("**Send derived objects** (C-STORE). For the budget-bound pass of a series the node "
+        "opens one association per destination and keeps it open between the pass's batches "
+        "(released when the pass ends); it proposes one presentation context per SOP class "
+        "and transfer syntax of the outputs below, with Implicit VR Little Endian added as a "
+        "fallback to an uncompressed syntax. A batch the association cannot carry, a retry "
+        "and each batch of the deferred pass (the outputs of one method) get an association "
+        "of their own, proposing the SOP classes and transfer syntaxes present. The objects "
+        "it creates:")
     add("")
     rows = [(f"`{kind}`", UID(cls).name, f"`{cls}`", ", ".join(UID(t).name for t in ts), "SCU",
              "None") for kind, cls, ts in scu]
