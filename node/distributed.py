@@ -28,6 +28,7 @@ from dataclasses import replace
 from typing import Any
 
 import numpy as np
+from pydicom.uid import ParametricMapStorage as PARAMETRIC_MAP_STORAGE
 
 from node import pipeline
 from node.config import NodeConfig
@@ -190,6 +191,7 @@ class DaskEngine:
             processor = Processor(self.config, lambda batch, clock: deliver(batch),
                                   keep_maps=self.keep_maps)
             clock = SeriesClock(job.series.key)
+            fitted: list[tuple[pipeline.MethodResult, Any]] = []
             for name in job.methods:
                 if (i, name) in failed:
                     outcome.ok = False
@@ -203,5 +205,12 @@ class DaskEngine:
                     values=results[(i, name)].reshape(job.prep.mask.shape), seconds=0.0,
                     n_voxels=int(np.count_nonzero(job.prep.mask)))
                 # the processor builds and delivers the objects exactly as in its own pass
-                processor._emit(job.series, job.protocol, job.prep, res, clock, outcome)
+                built = processor._emit(job.series, job.protocol, job.prep, res, clock, outcome)
+                fitted.append((res, next((d for d in built
+                                          if d.SOPClassUID == PARAMETRIC_MAP_STORAGE), None)))
+            if fitted:  # the deferred pass's own report, as Processor.run_deferred sends it
+                figures, reasons = processor._qc(job.prep, job.protocol)
+                processor._reports(job.series, job.protocol, job.prep, job.reported + fitted,
+                                   figures, reasons, clock, outcome,
+                                   deferred=[r.name for r, _ in fitted])
             outcome.ok = outcome.ok and not outcome.error

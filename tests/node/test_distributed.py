@@ -89,6 +89,15 @@ def test_maps_equal_the_single_machine_run(client, setup, local, chunk_voxels):
     # each series' reports (SR, summary page)
     assert sorted({(b.key, b.label) for b in delivered}) == sorted(
         (s.key, m) for s in series for m in [*METHODS, "report"])
+    # and each series' deferred report too (as Processor.run_deferred sends it): an SR
+    # covering every map, the fits included, in a series of its own
+    reports = [b for b in delivered if b.label == "report"]
+    assert len(reports) == 2 * len(series)
+    for s in series:
+        srs = [d for b in reports if b.key == s.key for d in b.datasets
+               if d.Modality == "SR"]
+        assert len({d.SeriesInstanceUID for d in srs}) == 2
+        assert any("incl. deferred" in d.SeriesDescription for d in srs)
     workers = {t["worker"] for t in ts.data}
     assert len(workers) == 2, "the work reached both worker processes"
     if chunk_voxels:
