@@ -817,7 +817,7 @@ def lda(
 # ----------------------------------------------------------------------------------------------
 # registry entries (model-based: the scheduler defers them). Maps in % of M0 like the
 # model-free measures; cost per voxel measured by tests/bench/bench_fits.py (SNR 60, 61 offsets,
-# one core: multi_lorentzian init='table' 8-15 s per 128 x 128 under the load seen, lda 1.5e-4).
+# one core: multi_lorentzian init='table' 7-8 s per 128 x 128 under the load seen, lda 1.5e-4).
 
 
 def _lda_percent(z, offsets_ppm, *, t1_s=None):
@@ -841,7 +841,7 @@ def _register() -> None:
         register(
             MethodInfo(
                 "multi_lorentzian", "Amide amplitude, 5-pool Lorentzian fit", "%", False, False,
-                6e-4, _multi_lorentzian_percent, needs_b0=False,
+                5e-4, _multi_lorentzian_percent, needs_b0=False,
             )
         )
 
