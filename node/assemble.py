@@ -38,6 +38,7 @@ from typing import Any
 
 import numpy as np
 from pydicom import Dataset
+from pydicom.datadict import tag_for_keyword
 from pydicom.dataelem import DataElement, RawDataElement
 from pydicom.multival import MultiValue
 from pydicom.tag import Tag
@@ -55,6 +56,7 @@ __all__ = [
     "FrameHeader",
     "Placed",
     "Prepared",
+    "private_block_element",
     "read_offset_ppm",
     "slice_geometry",
 ]
@@ -142,25 +144,112 @@ def _candidates(ds: Dataset, frame_index: int | None) -> list[Dataset]:
     return out
 
 
+def _creator_matches(d: Dataset, tag: int, elem: Any, creator: str,
+                     creator_b: bytes | None) -> bool:
+    """Whether the element at ``tag`` of ``d`` holds ``creator``, as pydicom compares it
+    (``elem.value == creator``, the value converted by pydicom).
+
+    A plain explicit-VR LO element of 7-bit text (no ESC, no backslash) is compared from its
+    bytes (pydicom strips only trailing spaces and NULs from it, PS3.5 6.2); anything else is
+    converted by pydicom.
+    """
+    if creator_b is not None and type(elem) is RawDataElement and elem.VR == "LO":
+        raw = elem.value
+        if (isinstance(raw, bytes) and raw and raw.isascii() and b"\\" not in raw
+                and b"\x1b" not in raw):
+            return raw.rstrip(b"\0 ") == creator_b
+    return bool(d[tag].value == creator)
+
+
+def _creator_bytes(creator: str) -> bytes | None:
+    """``creator`` as bytes when a byte comparison of a plain LO gives pydicom's answer."""
+    if (creator.isascii() and "\\" not in creator and "\x1b" not in creator
+            and creator == creator.rstrip("\0 ")):
+        return creator.encode("ascii")
+    return None
+
+
+def private_block_element(d: Dataset, group: int, creator: str) -> int | None:
+    """The element number (0x10-0xFF) of the private creator ``creator`` in ``group`` of ``d``,
+    or None when ``d`` has no such block: what ``d.private_block(group, creator)`` finds,
+    without building the block.
+
+    PS3.5 7.8.1: the creator element (gggg,00xx) reserves the block (gggg,xx00-xxFF). As in
+    pydicom, the lowest element holding the creator wins, and an empty creator or an even
+    group raises ValueError.
+    """
+    cached = d._private_blocks.get((group, creator))
+    if cached is not None:
+        return int(cached.block_start >> 8)
+    if not creator:
+        raise ValueError("Private creator must have a value")
+    if group % 2 == 0:
+        raise ValueError("Tag must be private if private creator is given")
+    dd = d._dict
+    base = group << 16
+    creator_b = _creator_bytes(creator)
+    first = dd.get(base | 0x10)  # type: ignore[call-overload]
+    if first is not None and _creator_matches(d, base | 0x10, first, creator, creator_b):
+        return 0x10
+    head = group << 8
+    elements = sorted(t & 0xFF for t in dd if t >> 8 == head and (t & 0xFF) > 0x10)
+    for e in elements:
+        if _creator_matches(d, base | e, dd[base | e], creator, creator_b):  # type: ignore[index]
+            return e
+    return None
+
+
+def _locate(cands: Iterable[Dataset], keyword: str | None = None, tag: int | None = None,
+            private_creator: str | None = None) -> tuple[Dataset, int] | None:
+    """Where the first value of ``_find`` is: (data set, tag), None when absent everywhere."""
+    if private_creator is not None and tag is not None:
+        group, byte = tag >> 16, tag & 0xFF
+        for d in cands:
+            e = private_block_element(d, group, private_creator)
+            if e is None:
+                continue
+            t = group << 16 | e << 8 | byte
+            if t in d._dict:
+                return d, t
+        return None
+    number = tag
+    if keyword is not None:
+        number = tag_for_keyword(keyword)
+        if number is None:  # not a keyword: pydicom's own handling of the name
+            for d in cands:
+                if keyword in d:
+                    return d, int(Tag(keyword))
+            return None
+    if number is None:
+        return None
+    for d in cands:
+        if number in d._dict:
+            return d, number
+    return None
+
+
 def _find(cands: Iterable[Dataset], keyword: str | None = None, tag: int | None = None,
           private_creator: str | None = None) -> Any:
-    """The first value found in ``cands`` (None when absent everywhere)."""
-    for d in cands:
-        if private_creator is not None and tag is not None:
-            group, byte = tag >> 16, tag & 0xFF
-            try:
-                block = d.private_block(group, private_creator)
-            except KeyError:
-                continue
-            if byte in block:
-                return block[byte].value
-            continue
-        if keyword is not None:
-            if keyword in d:
-                return d[keyword].value
-        elif tag is not None and tag in d:
-            return d[tag].value
-    return None
+    """The first value found in ``cands`` (None when absent everywhere).
+
+    A private element (``tag`` with ``private_creator``) is looked up as through
+    ``Dataset.private_block`` (see :func:`private_block_element`).
+    """
+    where = _locate(cands, keyword, tag, private_creator)
+    if where is None:
+        return None
+    d, t = where
+    return d[t].value
+
+
+def _number_at(where: tuple[Dataset, int]) -> Any:
+    """The value at ``where``: a float read from the bytes of a plain single-valued DS/IS
+    (see :func:`_raw_numbers`), else pydicom's value."""
+    d, t = where
+    fast = _raw_numbers(d, t)
+    if fast is not None and len(fast) == 1:
+        return fast[0]
+    return d[t].value
 
 
 def _as_text(value: Any) -> str:
@@ -212,7 +301,6 @@ def read_offset_ppm(ds: Dataset, rule: OffsetRule, *, frame_index: int | None = 
     (0018,0084) in MHz (PS3.3 C.8.3.1); a frequency in Hz divided by one in MHz is ppm.
     """
     cands = _candidates(ds, frame_index)
-    what = rule.describe()
     if rule.kind == "list":
         assert rule.order_by is not None
         raw = _find(cands, keyword=rule.order_by)
@@ -228,21 +316,30 @@ def read_offset_ppm(ds: Dataset, rule: OffsetRule, *, frame_index: int | None = 
                 f"{rule.order_by}: value {int(order)} is outside the protocol's list "
                 f"({rule.order_start}..{rule.order_start + len(rule.values_ppm) - 1})")
         return float(rule.values_ppm[idx])
-    raw = _find(cands, keyword=rule.keyword, tag=rule.tag, private_creator=rule.private_creator)
-    if raw is None:
-        raise AssemblyError(f"offset {what}: missing")
+    where = _locate(cands, keyword=rule.keyword, tag=rule.tag,
+                    private_creator=rule.private_creator)
     pattern = rule.pattern
+    if where is None:
+        found = None
+    elif pattern is not None:  # the text as pydicom gives it
+        found = where[0][where[1]].value
+    else:
+        found = _number_at(where)
+    if found is None:
+        raise AssemblyError(f"offset {rule.describe()}: missing")
     if pattern is not None:
-        text = _as_text(raw)
+        text = _as_text(found)
         m = pattern.search(text)
         if m is None:
-            raise AssemblyError(f"offset {what}: the regex does not match the value")
+            raise AssemblyError(f"offset {rule.describe()}: the regex does not match the value")
         group = "value" if "value" in pattern.groupindex else 1
-        value = _as_number(m.group(group), f"offset {what}")
+        value = _as_number(m.group(group), f"offset {rule.describe()}")
     else:
-        value = _as_number(raw, f"offset {what}")
+        value = (found if type(found) is float
+                 else _as_number(found, f"offset {rule.describe()}"))
     if rule.unit == "hz":
-        freq = _find(cands, keyword="ImagingFrequency")
+        at = _locate(cands, keyword="ImagingFrequency")
+        freq = None if at is None else _number_at(at)
         if freq is None:
             raise AssemblyError("ImagingFrequency: missing (needed to convert a Hz offset)")
         f0 = _as_number(freq, "ImagingFrequency")
@@ -278,8 +375,82 @@ def _raw_us(ds: Dataset, tag: int) -> int | None:
     return int.from_bytes(elem.value or b"", "little")
 
 
+def _raw_text(ds: Dataset, tag: int) -> str | None:
+    """The text of a not-yet-converted explicit-VR LO/SH/CS element of one value, read from
+    its bytes, as pydicom gives it: 7-bit text without ESC or backslash (so every DICOM
+    character set reads it the same), trailing spaces and NULs stripped (PS3.5 6.2). None
+    for anything else (the caller then takes pydicom's path)."""
+    elem = ds._dict.get(tag)  # type: ignore[call-overload]
+    if type(elem) is not RawDataElement or elem.VR not in ("LO", "SH", "CS"):
+        return None
+    raw = elem.value
+    if (not isinstance(raw, bytes) or not raw or not raw.isascii() or b"\\" in raw
+            or b"\x1b" in raw):
+        return None
+    return raw.rstrip(b"\0 ").decode("ascii")
+
+
+def _raw_int(ds: Dataset, tag: int) -> int | None:
+    """A plain single-valued IS element (raw, explicit VR) holding an integer, as an int."""
+    fast = _raw_numbers(ds, tag)
+    if fast is None or len(fast) != 1 or fast[0] != int(fast[0]):
+        return None
+    return int(fast[0])
+
+
+def _us_value(ds: Dataset, tag: int) -> int | None:
+    """A US element of one value, raw or already converted by pydicom (None otherwise)."""
+    elem = ds._dict.get(tag)  # type: ignore[call-overload]
+    if type(elem) is DataElement and type(elem.value) is int:
+        return elem.value
+    return _raw_us(ds, tag)
+
+
+def _converted(ds: Dataset, tag: int) -> Any:
+    """The value of an element pydicom has already converted (``_MISSING`` otherwise)."""
+    elem = ds._dict.get(tag)  # type: ignore[call-overload]
+    return elem.value if type(elem) is DataElement else _MISSING
+
+
+_MISSING = object()
+
+
+def _match_text(ds: Dataset, attribute: str) -> str | None:
+    """``_as_text(ds.get(attribute))`` for a match rule, None when absent (or None); a plain
+    text element is read from its bytes (:func:`_raw_text`)."""
+    tag = tag_for_keyword(attribute)
+    if tag is not None:
+        fast = _raw_text(ds, tag)
+        if fast is not None:
+            return fast.strip()
+    value = ds.get(attribute)
+    return None if value is None else _as_text(value)
+_PLAIN_TS: dict[bytes | str, bool] = {}  # transfer syntax (raw bytes or UID) -> plain
+
+
+def _plain_syntax(ds: Dataset) -> bool:
+    """Whether the file meta's Transfer Syntax is uncompressed little endian (False when
+    there is none). Answers are kept per raw value, so the UID is converted once."""
+    meta = getattr(ds, "file_meta", None)
+    elem = None if meta is None else meta._dict.get(0x00020010)
+    key: bytes | str | None = None
+    if type(elem) is RawDataElement and isinstance(elem.value, bytes):
+        key = elem.value
+    elif type(elem) is DataElement and isinstance(elem.value, str):
+        key = str(elem.value)
+    plain = None if key is None else _PLAIN_TS.get(key)
+    if plain is None:
+        ts = getattr(meta, "TransferSyntaxUID", None)
+        plain = ts is not None and bool(not ts.is_compressed and ts.is_little_endian)
+        if key is not None and len(_PLAIN_TS) < 64:
+            _PLAIN_TS[key] = plain
+    return plain
+
+
 def _same_orientation(a: tuple[float, ...], b: tuple[float, ...]) -> bool:
     """``np.allclose(a, b, atol=_ORIENTATION_TOLERANCE)`` (rtol 1e-5) for two short tuples."""
+    if a == b and math.isfinite(sum(a)):  # equal and finite: close (the common case)
+        return True
     return len(a) == len(b) and all(
         abs(x - y) <= _ORIENTATION_TOLERANCE + 1e-5 * abs(y) for x, y in zip(a, b, strict=True))
 
@@ -334,7 +505,8 @@ def _header_only(ds: Dataset) -> Dataset:
     return hdr
 
 
-def _decode_pixels(ds: Dataset, *, modality: bool = True) -> np.ndarray:
+def _decode_pixels(ds: Dataset, *, modality: bool = True, rows: int | None = None,
+                   cols: int | None = None) -> np.ndarray:
     """Stored pixel values as float32 ``(frames, rows, cols)``, Modality LUT applied.
 
     With ``modality=False`` the stored values are returned as they are.
@@ -344,13 +516,12 @@ def _decode_pixels(ds: Dataset, *, modality: bool = True) -> np.ndarray:
     Intercept (PS3.3 C.11.1) are applied when present at the top level; per-frame ones by the
     caller.
     """
-    rows = _raw_us(ds, 0x00280010) or int(ds.Rows)
-    cols = _raw_us(ds, 0x00280011) or int(ds.Columns)
+    rows = rows or _raw_us(ds, 0x00280010) or int(ds.Rows)
+    cols = cols or _raw_us(ds, 0x00280011) or int(ds.Columns)
     n_frames = int(ds.get("NumberOfFrames", 1) or 1) if 0x00280008 in ds._dict else 1
     arr: np.ndarray | None = None
-    ts = getattr(getattr(ds, "file_meta", None), "TransferSyntaxUID", None)
     raw = ds._dict.get(_PIXEL_DATA)
-    if (ts is not None and not ts.is_compressed and ts.is_little_endian
+    if (_plain_syntax(ds)
             and (_raw_us(ds, 0x00280002) or int(ds.get("SamplesPerPixel", 1))) == 1
             and raw is not None):
         bits = _raw_us(ds, 0x00280100) or int(ds.BitsAllocated)
@@ -376,10 +547,11 @@ def _decode_pixels(ds: Dataset, *, modality: bool = True) -> np.ndarray:
     if not modality:
         return out
     fast_s, fast_i = _raw_numbers(ds, 0x00281053), _raw_numbers(ds, 0x00281052)
+    dd = ds._dict
     slope: Any = (fast_s[0] if fast_s is not None and len(fast_s) == 1
-                  else ds.get("RescaleSlope"))
+                  else ds.get("RescaleSlope") if 0x00281053 in dd else None)
     intercept: Any = (fast_i[0] if fast_i is not None and len(fast_i) == 1
-                      else ds.get("RescaleIntercept"))
+                      else ds.get("RescaleIntercept") if 0x00281052 in dd else None)
     if slope is not None and float(slope) != 1.0:
         out *= np.float32(float(slope))
     if intercept is not None and float(intercept) != 0.0:
@@ -476,8 +648,19 @@ class _Series:
     released_hint: bool = False
     held: bool = False
     study_uid: str = ""
+    by_position: dict[float, _Slice] = field(default_factory=dict)
 
     def slice_for(self, position: float) -> _Slice:
+        # the first slice within SLICE_TOLERANCE_MM of ``position``; slices are only ever
+        # appended, so the answer for one exact position never changes: kept by position
+        known = self.by_position.get(position)
+        if known is not None:
+            return known
+        found = self._first_within(position)
+        self.by_position[position] = found
+        return found
+
+    def _first_within(self, position: float) -> _Slice:
         for s in self.slices:
             if abs(s.position_mm - position) < SLICE_TOLERANCE_MM:
                 return s
@@ -573,10 +756,8 @@ class Assembler:
     def match(self, ds: Dataset) -> Protocol | None:
         """The first protocol whose match rule fits ``ds`` (None: ignore the instance)."""
         for proto in self.config.protocols:
-            value = ds.get(proto.match.attribute)
-            if value is None:
-                continue
-            if proto.match.pattern.search(_as_text(value)):
+            text = _match_text(ds, proto.match.attribute)
+            if text is not None and proto.match.pattern.search(text):
                 return proto
         return None
 
@@ -585,8 +766,8 @@ class Assembler:
         own match rules, which are usually broader)."""
         for proto in self.config.protocols:
             for rule in proto.companions:
-                value = ds.get(rule.match.attribute)
-                if value is not None and rule.match.pattern.search(_as_text(value)):
+                text = _match_text(ds, rule.match.attribute)
+                if text is not None and rule.match.pattern.search(text):
                     return proto, rule
         return None
 
@@ -607,22 +788,34 @@ class Assembler:
         proto = found[0] if found is not None else self.match(ds)
         if proto is None:
             return None
-        try:
-            study, series, sop = ds.StudyInstanceUID, ds.SeriesInstanceUID, ds.SOPInstanceUID
-        except AttributeError as exc:
-            raise AssemblyError(f"{exc.name or 'a UID'}: missing") from None
-        if "PixelData" not in ds:
+        # values pydicom has already converted (the receiver reads the UIDs and the matrix
+        # size first) are taken as they are; anything else through pydicom
+        study, series, sop = (_converted(ds, 0x0020000D), _converted(ds, 0x0020000E),
+                              _converted(ds, 0x00080018))
+        if study is _MISSING or series is _MISSING or sop is _MISSING:
+            try:
+                study, series, sop = (ds.StudyInstanceUID, ds.SeriesInstanceUID,
+                                      ds.SOPInstanceUID)
+            except AttributeError as exc:
+                raise AssemblyError(f"{exc.name or 'a UID'}: missing") from None
+        if _PIXEL_DATA not in ds._dict:
             raise AssemblyError("PixelData: missing")
-        try:
-            rows, cols = int(ds.Rows), int(ds.Columns)
-        except (AttributeError, TypeError, ValueError):
-            raise AssemblyError("Rows/Columns: missing or not integers") from None
+        fast_rows, fast_cols = _us_value(ds, 0x00280010), _us_value(ds, 0x00280011)
+        if fast_rows is not None and fast_cols is not None:
+            rows, cols = fast_rows, fast_cols
+        else:
+            try:
+                rows, cols = int(ds.Rows), int(ds.Columns)
+            except (AttributeError, TypeError, ValueError):
+                raise AssemblyError("Rows/Columns: missing or not integers") from None
         if rows < 1 or cols < 1:
             raise AssemblyError(f"Rows/Columns: {rows} x {cols} is empty")
         physical = rule is not None and rule.kind in ("t1", "b1")
-        pixels = _decode_pixels(ds, modality=not physical)
-        multi = _PER_FRAME in ds
-        instance_number = int(ds.get("InstanceNumber", 0) or 0)
+        pixels = _decode_pixels(ds, modality=not physical, rows=rows, cols=cols)
+        multi = _PER_FRAME in ds._dict
+        fast_in = _raw_int(ds, 0x00200013)
+        instance_number = (fast_in if fast_in is not None
+                           else int(ds.get("InstanceNumber", 0) or 0))
         frames: list[Frame] = []
         cframes: list[CompanionFrame] = []
         units = ""
@@ -656,7 +849,9 @@ class Assembler:
                 frame_header = _frame_header(header, cands, i + 1)
             frames.append(Frame(offset, position, img, (instance_number, str(sop), i),
                                 frame_number=i + 1 if multi else None, header=frame_header))
-        iia = ds.get("ImagesInAcquisition")
+        fast_iia = _raw_int(ds, 0x00201002)
+        iia = (fast_iia if fast_iia is not None
+               else ds.get("ImagesInAcquisition") if 0x00201002 in ds._dict else None)
         try:
             images = int(iia) if iia not in (None, "") else None
         except (TypeError, ValueError):

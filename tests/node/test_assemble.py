@@ -277,3 +277,131 @@ def test_duplicates_unmatched_and_inconsistent_instances():
         with pytest.raises(AssemblyError, match=r"PixelData: 2 bytes, expected 60"):
             asm.add(short)
         assert asm.open_series() == {asm.prepare(dss[0]).key: 1}  # type: ignore[union-attr]
+
+
+# ----------------------------------------------------------------------------- fast lookups
+def _encoded(ds, *, implicit: bool = False):
+    """``ds`` written and read back as the receiver sees it: raw, not yet converted elements
+    (explicit VR LE through node.fastpath's scanner, implicit VR through pydicom's reader)."""
+    from pydicom.filebase import DicomBytesIO
+    from pydicom.filewriter import write_dataset
+
+    from node.fastpath import part10_prefix_and_meta, scan_dataset
+    buf = DicomBytesIO()
+    buf.is_little_endian, buf.is_implicit_VR = True, implicit
+    write_dataset(buf, ds)
+    ts = str(ImplicitVRLittleEndian) if implicit else "1.2.840.10008.1.2.1"
+    out = scan_dataset(buf.getvalue(), ts)[0]
+    if "SOPInstanceUID" in ds:
+        out.file_meta = part10_prefix_and_meta(str(ds.SOPClassUID), str(ds.SOPInstanceUID), ts,
+                                               implementation_class_uid="1.2.3",
+                                               implementation_version="TEST")[1]
+    return out
+
+
+def _pydicom_block_element(ds, group, creator):
+    # the reference: pydicom's own private block lookup (PS3.5 7.8.1), on a fresh copy so
+    # neither side sees the other's converted values or cached blocks
+    try:
+        return ds.private_block(group, creator).block_start >> 8
+    except KeyError:
+        return None
+
+
+@pytest.mark.parametrize("implicit", [False, True])
+def test_private_block_element_agrees_with_pydicom_private_block(implicit):
+    # PS3.5 7.8.1: (gggg,00xx) holds the creator of block (gggg,xx00-xxFF); any xx in
+    # 0x10-0xFF. The direct lookup must find the same block as pydicom's private_block.
+    from pydicom import Dataset
+
+    from node.assemble import private_block_element
+    ds = Dataset()
+    ds.add_new(0x00290010, "LO", "OTHER VENDOR")
+    ds.add_new(0x00290011, "LO", "CESTNODE SIM 1")  # even length after padding: "... 1 "
+    ds.add_new(0x00290042, "LO", "SECOND\\VALUE")  # multi-valued: equals no single creator
+    ds.add_new(0x002900FF, "LO", "LAST BLOCK")
+    ds.add_new(0x00290080, "LO", "CESTNODE SIM 1")  # a repeat: the lowest block wins
+    ds.add_new(0x00311020, "LO", "not a creator range")
+    ds.add_new(0x00310020, "LO", "  LEADING")  # leading spaces are kept by pydicom
+    for group, creator in [(0x0029, "CESTNODE SIM 1"), (0x0029, "OTHER VENDOR"),
+                           (0x0029, "LAST BLOCK"), (0x0029, "SECOND"), (0x0029, "NOPE"),
+                           (0x0029, "CESTNODE SIM"), (0x0031, "not a creator range"),
+                           (0x0031, "  LEADING"), (0x0031, "LEADING"), (0x0033, "ANY")]:
+        want = _pydicom_block_element(_encoded(ds, implicit=implicit), group, creator)
+        got = private_block_element(_encoded(ds, implicit=implicit), group, creator)
+        assert got == want, (hex(group), creator)
+    assert private_block_element(_encoded(ds), 0x0029, "CESTNODE SIM 1") == 0x11
+    assert private_block_element(_encoded(ds), 0x0029, "SECOND") is None
+    # refused alike: an even group or an empty creator (pydicom raises ValueError)
+    for group, creator in [(0x0028, "CESTNODE SIM 1"), (0x0029, "")]:
+        with pytest.raises(ValueError):
+            _encoded(ds).private_block(group, creator)
+        with pytest.raises(ValueError):
+            private_block_element(_encoded(ds), group, creator)
+
+
+def test_private_block_element_non_ascii_creator_and_converted_elements():
+    # a creator outside 7-bit text goes through pydicom's decoding (SpecificCharacterSet,
+    # PS3.5 6.1); an element pydicom has already converted is compared by its value
+    from pydicom import Dataset
+
+    from node.assemble import private_block_element
+    ds = Dataset()
+    ds.SpecificCharacterSet = "ISO_IR 100"
+    ds.add_new(0x00290010, "LO", "FABRIQUÉ")
+    ds.add_new(0x00290020, "LO", "CESTNODE SIM 1")
+    raw = _encoded(ds)
+    assert private_block_element(raw, 0x0029, "FABRIQUÉ") == _pydicom_block_element(
+        _encoded(ds), 0x0029, "FABRIQUÉ") == 0x10
+    raw[0x00290020].value  # converted now  # noqa: B018
+    assert private_block_element(raw, 0x0029, "CESTNODE SIM 1") == 0x20
+    assert private_block_element(ds, 0x0029, "CESTNODE SIM 1") == 0x20  # built in memory
+
+
+@pytest.mark.parametrize("implicit", [False, True])
+def test_offset_from_a_private_block_other_than_0x10_honours_the_creator(implicit):
+    # the offset element (0029,xx10) of the block whose creator matches, wherever it is;
+    # the same element byte of another creator's block is not taken
+    ds = _series()[0]
+    true = float(ds.private_block(0x0029, "CESTNODE SIM 1")[0x10].value)
+    del ds[0x00290010]
+    del ds[0x00291010]
+    ds.add_new(0x00290010, "LO", "OTHER VENDOR")
+    ds.add_new(0x00291010, "DS", "99.0")  # same byte, other creator's block
+    ds.add_new(0x00290043, "LO", "CESTNODE SIM 1")
+    ds.add_new(0x00294310, "DS", f"{true:.4f}")
+    rule = _cfg().protocols[0].offset
+    raw = _encoded(ds, implicit=implicit)
+    via_pydicom = float(_encoded(ds, implicit=implicit).private_block(0x0029, "CESTNODE SIM 1")
+                        [0x10].value)
+    assert read_offset_ppm(raw, rule) == via_pydicom == pytest.approx(true)
+    del ds[0x00294310]  # the creator's block without the element: missing, not 99
+    with pytest.raises(AssemblyError, match="missing"):
+        read_offset_ppm(_encoded(ds, implicit=implicit), rule)
+
+
+def test_prepare_from_raw_bytes_equals_prepare_from_converted_values():
+    # the fast readers (match text, UIDs, Rows/Columns, InstanceNumber, ImagesInAcquisition,
+    # offset, geometry, pixels) give what pydicom's converted values give
+    datasets = _series()
+    datasets[0].SeriesDescription = "CEST APT phantom  "  # trailing spaces: stripped
+    datasets[1].InstanceNumber = "7"
+    datasets[2].ImagesInAcquisition = 21
+    asm = Assembler(_cfg(), lambda s: None)
+    for ds in datasets:
+        conv = _encoded(ds)
+        for elem in conv:  # every value converted by pydicom first
+            elem.value  # noqa: B018
+        a, b = asm.prepare(_encoded(ds)), asm.prepare(conv)
+        assert a is not None and b is not None
+        assert (a.key, a.sop_instance_uid, a.rows, a.cols, a.orientation,
+                a.images_in_acquisition) == (b.key, b.sop_instance_uid, b.rows, b.cols,
+                                             b.orientation, b.images_in_acquisition)
+        assert [(f.offset_ppm, f.position_mm, f.tiebreak) for f in a.frames] == \
+            [(f.offset_ppm, f.position_mm, f.tiebreak) for f in b.frames]
+        np.testing.assert_array_equal(a.frames[0].pixels, b.frames[0].pixels)
+    bad = _series()[0]
+    bad.SeriesDescription = " CEST APT phantom"  # leading space: _as_text strips it too
+    assert asm.prepare(_encoded(bad)) is not None
+    bad.SeriesDescription = "OTHER CEST APT phantom"
+    assert asm.prepare(_encoded(bad)) is None
