@@ -124,18 +124,22 @@ class Prepared:
         (:func:`quant.registry.band_columns`) and their offsets. The same values as those
         columns of :attr:`zv` (the same spline, evaluated at fewer points)."""
         cols = band_columns(self.offsets_ppm, reads_ppm)
-        key = ("band", tuple(cols.tolist()))
+        # one resample serves every model-free method: the columns all of them read
+        union = band_columns(self.offsets_ppm, tuple(sorted(
+            {*reads_ppm, *(t for m in METHODS.values() if m.model_free and m.reads_ppm
+                           for t in m.reads_ppm)})))
+        key = ("band", tuple(union.tolist()))
         with self._lock:
             if key not in self._cache:
                 if self.given:
                     assert self.corrected is not None
-                    self._cache[key] = self.corrected[:, cols]
+                    self._cache[key] = self.corrected[:, union]
                 else:
                     self._cache[key] = _correct_rows(self.zv_uncorrected, self.offsets_ppm,
-                                                     self.shift_v, columns=cols).z
+                                                     self.shift_v, columns=union).z
             band = self._cache[key]
         assert isinstance(band, np.ndarray)
-        return band, self.offsets_ppm[cols]
+        return band[:, np.searchsorted(union, cols)], self.offsets_ppm[cols]
 
     def volume(self, rows: np.ndarray) -> np.ndarray:
         """Per-voxel rows ``(n_voxels, ...)`` scattered into the volume, NaN elsewhere."""

@@ -15,7 +15,7 @@ import queue
 import threading
 import time
 from collections.abc import Callable, Sequence
-from concurrent.futures import Future, ThreadPoolExecutor
+from concurrent.futures import Future, ThreadPoolExecutor, wait
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -155,6 +155,9 @@ class Processor:
         self.config = config
         self.deliver = deliver
         self.submit = submit
+        self.primary_first = True
+        """With ``submit``: wait for the primary's objects to be stored before building the
+        next method's (its compute still runs beside the sends)."""
         self.cost = cost or CostModel.from_registry(METHODS)
         self.keep_maps = keep_maps
 
@@ -318,17 +321,28 @@ class Processor:
                         "; ".join(r.message for r in reasons))
         measured: dict[str, float] = {}
         results: list[tuple[pipeline.MethodResult, Dataset | None]] = []
+        primary_sent: Any = None
         for name in plan.run:
             with clock.stage(f"method:{name}"):
                 res = pipeline.compute(prep, name)
             measured[name] = res.seconds
             self.cost.learn(name, seconds=res.seconds, n_voxels=max(res.n_voxels, 1))
+            if primary_sent is not None and self.primary_first:
+                # the primary's objects go out before this method's are built: building
+                # holds the GIL and would slow every send of the primary (measured with
+                # Orthanc: 41 primary objects in 0.9 s while the next method was built
+                # beside them, 0.5 s alone)
+                with clock.stage("wait:primary"):
+                    wait([primary_sent])
+                primary_sent = None
             built = self._emit(series, protocol, prep, res, clock, outcome, note=note,
                                stream=True)
             results.append((res, next((d for d in built if d.SOPClassUID == PARAMETRIC_MAP),
                                       None)))
             if name == plan.primary:
                 self._when_sent(outcome, lambda: clock.mark("primary_ack"))
+                if outcome.pending:
+                    primary_sent = outcome.pending[-1][1]
         clock.info["measured_s"] = {k: round(v, 4) for k, v in measured.items()}
         self._reports(series, protocol, prep, results, figures, reasons, clock, outcome,
                       stream=True)
