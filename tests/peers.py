@@ -22,6 +22,7 @@ import time
 import urllib.request
 from collections.abc import Iterable, Sequence
 from pathlib import Path
+from typing import Any
 
 import pytest
 
@@ -128,20 +129,30 @@ class StoreSCP:
     """DCMTK ``storescp`` writing every received object into ``folder``."""
 
     def __init__(self, folder: str | Path, *, ae_title: str = "ARCHIVE", port: int | None = None,
-                 extra: Sequence[str] = ()):
+                 extra: Sequence[str] = (), log: str | Path | None = None):
         self.folder = Path(folder)
         self.ae_title = ae_title
         self.port = port or free_port()
         self.extra = list(extra)
+        self.log = Path(log) if log is not None else None
+        """With ``log``: storescp's verbose log (``-v``) goes there (:meth:`associations`)."""
         self.proc: subprocess.Popen | None = None
 
     def __enter__(self) -> StoreSCP:
         exe = require("storescp")
         self.folder.mkdir(parents=True, exist_ok=True)
+        out: Any = subprocess.DEVNULL
+        verbose: list[str] = []
+        if self.log is not None:
+            out = open(self.log, "ab")  # noqa: SIM115 (closed with the process)
+            verbose = ["-v"]
         self.proc = subprocess.Popen(
-            [exe, "-aet", self.ae_title, "-od", str(self.folder), "+B", *self.extra, str(self.port)],
-            env=PEER_ENV, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+            [exe, "-aet", self.ae_title, "-od", str(self.folder), "+B", *verbose, *self.extra,
+             str(self.port)],
+            env=PEER_ENV, stdout=out, stderr=subprocess.STDOUT if self.log else out,
         )
+        if self.log is not None:
+            out.close()  # the child has its own copy
         wait_port(self.port, proc=self.proc)
         return self
 
@@ -151,6 +162,13 @@ class StoreSCP:
 
     def files(self) -> list[Path]:
         return sorted(p for p in self.folder.iterdir() if p.is_file())
+
+    def associations(self) -> int:
+        """Associations storescp has accepted so far (from its verbose log; the port probe of
+        :func:`wait_port` is received but never acknowledged)."""
+        if self.log is None or not self.log.exists():
+            raise RuntimeError("associations() needs StoreSCP(..., log=PATH)")
+        return self.log.read_text(errors="replace").count("Association Acknowledged")
 
     def wait_for(self, count: int, *, timeout: float = 30.0) -> list[Path]:
         deadline = time.monotonic() + timeout
