@@ -364,12 +364,6 @@ class NodeConfig:
         An object a destination did not acknowledge is retried (:mod:`node.outbox`) with
         exponential back-off from ``send_backoff_s`` up to ``send_backoff_max_s`` (with
         jitter), for ``send_retry_for_s`` seconds; then it is marked failed and reported.
-    send_lanes
-        Associations per destination over which the budget-bound pass sends a batch of
-        several objects (split between them, in parallel). 1 (the default) suits every
-        archive; 2 cut the primary's send to Orthanc by about a fifth, but an archive that
-        serves one association at a time (DCMTK storescp without ``--fork``) would hold the
-        second until it times out.
     tls
         TLS certificates and policy (:class:`~node.tls.TlsSettings`), None without TLS.
     metrics
@@ -397,7 +391,6 @@ class NodeConfig:
     send_retry_for_s: float = 86400.0
     send_backoff_s: float = 5.0
     send_backoff_max_s: float = 600.0
-    send_lanes: int = 1
     tls: TlsSettings | None = None
     metrics: MetricsSettings = field(default_factory=lambda: MetricsSettings())
 
@@ -495,7 +488,7 @@ def parse_config(
                  "fsync", "idle_timeout_s", "release_grace_s", "max_pdu",
                  "allowed_peer_addresses", "max_associations", "min_free_mb", "max_rows",
                  "max_cols", "max_frames_per_series", "send_retry_for_s", "send_backoff_s",
-                 "send_backoff_max_s", "send_lanes"}, "node")
+                 "send_backoff_max_s"}, "node")
     backoff = _number(node.get("send_backoff_s", 5.0), "node.send_backoff_s", gt=0)
     backoff_max = _number(node.get("send_backoff_max_s", 600.0), "node.send_backoff_max_s", gt=0)
     if backoff_max < backoff:
@@ -541,7 +534,6 @@ def parse_config(
                                  ge=0),
         send_backoff_s=backoff,
         send_backoff_max_s=backoff_max,
-        send_lanes=_int(node.get("send_lanes", 1), "node.send_lanes", ge=1),
         tls=tls,
         metrics=_metrics(data.get("metrics", {}), "metrics"),
     )

@@ -271,9 +271,7 @@ def statement(config: NodeConfig | None = None) -> str:
         ("Simultaneous associations accepted (SCP)",
          f"{cfg.max_associations} (config `node.max_associations`)"),
         ("Simultaneous associations initiated (SCU)",
-         f"up to {cfg.send_lanes} per destination while the budget-bound pass sends (config "
-         "`node.send_lanes`; a batch of several objects split between them), one per "
-         "destination otherwise; destinations in parallel"),
+         "one per destination while sending a batch (destinations in parallel)"),
     ])
     add("Asynchronous nature: not supported; one operation at a time per association "
         "(no Asynchronous Operations Window negotiation).")
@@ -328,8 +326,7 @@ def statement(config: NodeConfig | None = None) -> str:
     add("#### 3.2.4 Association initiation policy (SCU)")
     add("")
     add("**Send derived objects** (C-STORE). For the budget-bound pass of a series the node "
-        "opens one association per destination (per lane: `node.send_lanes`) and keeps it "
-        "open between the pass's batches "
+        "opens one association per destination and keeps it open between the pass's batches "
         "(released when the pass ends); it proposes one presentation context per SOP class "
         "and transfer syntax of the outputs below, with Implicit VR Little Endian added as a "
         "fallback to an uncompressed syntax. A batch the association cannot carry, a retry "

@@ -721,31 +721,13 @@ class Node:
             except Exception:  # a release that fails leaves nothing to clean up here
                 log.debug("release of a kept association failed", exc_info=True)
 
-    def _session(self, dest: Any, streamed: bool, lane: int = 0) -> SendSession | None:
+    def _session(self, dest: Any, streamed: bool) -> SendSession | None:
         if not streamed:
             return None
-        key = f"{dest}#{lane}"
+        key = str(dest)
         if key not in self._sessions:
             self._sessions[key] = self.sender.session(OUTPUT_CONTEXTS)
         return self._sessions[key]
-
-    def _send_lanes(self, datasets: list[Dataset], dest: Any, key: str,
-                    streamed: bool) -> list[tuple[list[Dataset], SendReport]]:
-        """Send to one destination; a streamed batch of several objects is split over
-        ``send_lanes`` associations sent in parallel (the archive's storing of one overlaps
-        our encoding of the next), every other one over one association."""
-        lanes = self.config.send_lanes if streamed else 1
-        lanes = max(1, min(lanes, len(datasets) // 2))
-        if lanes == 1:
-            return [(datasets, self.sender.send(datasets, dest, key=key,
-                                                session=self._session(dest, streamed)))]
-        parts = [datasets[k::lanes] for k in range(lanes)]
-        with ThreadPoolExecutor(max_workers=lanes, thread_name_prefix="cest-lane") as pool:
-            reports = list(pool.map(
-                lambda kp: self.sender.send(kp[1], dest, key=key,
-                                            session=self._session(dest, True, kp[0])),
-                enumerate(parts)))
-        return list(zip(parts, reports, strict=True))
 
     def _deliver(self, batch: OutputBatch, clock: SeriesClock, *, streamed: bool = False) -> bool:
         if not self.config.destinations:
@@ -762,13 +744,13 @@ class Node:
         reports: list[SendReport] = []
 
         def one(dest: Any) -> int:
-            chosen = [batch.datasets[i] for i in claim[str(dest)]]
-            unsent = 0
-            for part, report in self._send_lanes(chosen, dest, batch.key, streamed):
-                reports.append(report)
-                unsent += self.outbox.record(report, [str(d.SOPInstanceUID) for d in part],
-                                             series_key=batch.key, datasets=part)
-            return unsent
+            idx = claim[str(dest)]
+            chosen = [batch.datasets[i] for i in idx]
+            report = self.sender.send(chosen, dest, key=batch.key,
+                                      session=self._session(dest, streamed))
+            reports.append(report)
+            return self.outbox.record(report, [str(d.SOPInstanceUID) for d in chosen],
+                                      series_key=batch.key, datasets=chosen)
 
         with clock.stage(f"send:{batch.label}"):
             if len(dests) == 1:
@@ -791,17 +773,15 @@ class Node:
         with clock.stage(f"send:{batch.label}"):
             if len(self.config.destinations) == 1:
                 dest = self.config.destinations[0]
-                sent = self._send_lanes(list(batch.datasets), dest, batch.key, streamed)
-                reports = [r for _, r in sent]
-                parts = [p for p, _ in sent]
+                reports = [self.sender.send(batch.datasets, dest, key=batch.key,
+                                            session=self._session(dest, streamed))]
             else:
                 reports = self.sender.send_batch(batch, self.config.destinations)
-                parts = [list(batch.datasets)] * len(reports)
         self.metrics.observe_send(batch.label, reports)
-        for rep, part in zip(reports, parts, strict=True):
+        for rep in reports:
             if not rep.ok:
                 ok = False
-                failed = [part[i.index] for i in rep.items if not i.stored]
+                failed = [batch.datasets[i.index] for i in rep.items if not i.stored]
                 folder = self._unsent_dir / batch.key
                 write_datasets(failed, folder)
                 log.error("series %s: %d objects not stored at %s; kept in %s", batch.key,

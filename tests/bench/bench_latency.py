@@ -69,14 +69,12 @@ def archive(kind: str, folder: Path) -> Iterator[str]:
         raise ValueError(f"archive: expected 'orthanc' or 'storescp', got {kind!r}")
 
 
-def node_run(work: Path, dest: str, files: list[Path], *, fsync: bool = True,
-             lanes: int = 1) -> dict[str, Any]:
+def node_run(work: Path, dest: str, files: list[Path], *, fsync: bool = True) -> dict[str, Any]:
     """One series through a fresh node; returns its latency record plus the ingest time."""
     base = default_config(base_dir=work)
     proto = dataclasses.replace(base.protocols[0], model_based=False)
     cfg = base.with_overrides(port=0, spool_dir=work / "spool", log_dir=work / "logs",
-                              fsync=fsync, destinations=[dest], protocols=(proto,),
-                              send_lanes=lanes)
+                              fsync=fsync, destinations=[dest], protocols=(proto,))
     done = threading.Event()
     got: list[SeriesOutcome] = []
 
@@ -111,7 +109,7 @@ def p95(values: list[float]) -> float:
 
 
 def measure(files: list[Path], kind: str, runs: int, *, fsync: bool = True,
-            quiet: bool = False, lanes: int = 1) -> dict[str, Any]:
+            quiet: bool = False) -> dict[str, Any]:
     """``runs`` interleaved pairs (anchor, node); the per-run figures in seconds."""
     out: dict[str, list[float]] = {"anchor": [], "ingest": [], "primary": [], "total": []}
     records: list[dict[str, Any]] = []
@@ -119,7 +117,7 @@ def measure(files: list[Path], kind: str, runs: int, *, fsync: bool = True,
         for i in range(runs):
             work = Path(tmp) / f"run{i}"
             out["anchor"].append(anchor_run(work, files))
-            rec = node_run(work, dest, files, fsync=fsync, lanes=lanes)
+            rec = node_run(work, dest, files, fsync=fsync)
             records.append(rec)
             out["ingest"].append(rec["ingest_s"])
             out["primary"].append(rec["primary_ms"] / 1000)
@@ -158,9 +156,6 @@ def main() -> None:
     ap.add_argument("--slices", type=int, default=20)
     ap.add_argument("--archive", choices=["both", "orthanc", "storescp"], default="both")
     ap.add_argument("--no-fsync", action="store_true", help="spool without fsync")
-    ap.add_argument("--send-lanes", type=int, default=1,
-                    help="node.send_lanes for Orthanc (storescp serves one association at a "
-                         "time, so it always gets 1)")
     args = ap.parse_args()
     logging.basicConfig(level=logging.ERROR)
     if args.runs < 5:
@@ -172,9 +167,8 @@ def main() -> None:
               f"{SIZE} x {SIZE}); fsync {'off' if args.no_fsync else 'on'}", flush=True)
         for kind in kinds:
             print(f"archive {kind}:", flush=True)
-            lanes = args.send_lanes if kind == "orthanc" else 1
-            m = measure(files, kind, args.runs, fsync=not args.no_fsync, lanes=lanes)
-            report(f"node -> {kind} (send_lanes {lanes})", m)
+            m = measure(files, kind, args.runs, fsync=not args.no_fsync)
+            report(f"node -> {kind}", m)
 
 
 if __name__ == "__main__":

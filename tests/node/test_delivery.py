@@ -1,6 +1,6 @@
-"""How the budget-bound pass delivers: each output kind as soon as it is built, over the
-associations kept open for the pass (node.service.Node, node.send.SendSession), split over
-``node.send_lanes`` associations per destination.
+"""How the budget-bound pass delivers: each output kind as soon as it is built, over one
+association per destination kept open for the whole pass (node.service.Node,
+node.send.SendSession).
 
 The archive is DCMTK storescp (a real peer, its verbose log counts the associations it
 accepted, "Association Acknowledged"); every object must arrive exactly once, with its SOP
@@ -26,12 +26,11 @@ SLICES, SIZE = 4, 16
 OFFSETS = [-300.0, *(x / 2 for x in range(-10, 11))]
 
 
-def config(tmp_path: Path, port: int, lanes: int):
+def config(tmp_path: Path, port: int):
     return parse_config({
         "node": {"port": 0, "spool_dir": str(tmp_path / "spool"),
                  "log_dir": str(tmp_path / "logs"), "fsync": False, "idle_timeout_s": 3.0,
-                 "release_grace_s": 0.2, "allowed_calling_aets": [SCANNER],
-                 "send_lanes": lanes},
+                 "release_grace_s": 0.2, "allowed_calling_aets": [SCANNER]},
         "destinations": [{"ae_title": "ARCHIVE", "host": "127.0.0.1", "port": port}],
         "protocols": [{
             "name": "apt_small",
@@ -46,28 +45,23 @@ def config(tmp_path: Path, port: int, lanes: int):
 
 
 @pytest.mark.peers
-@pytest.mark.parametrize("lanes", [1, 2])
-def test_a_pass_uses_its_lanes_and_every_object_arrives_once(tmp_path, lanes):
+def test_a_pass_goes_over_one_association_and_every_object_arrives_once(tmp_path):
     ph = make_phantom(slices=SLICES, size=SIZE, offsets_ppm=OFFSETS, seed=7)
-    files = write_series(series_from_arrays(ph.signal, OFFSETS, seed=f"lanes-{lanes}"),
+    files = write_series(series_from_arrays(ph.signal, OFFSETS, seed="one-association"),
                          tmp_path / "scanner")
     collect = Collect()
-    # --fork: storescp serves each association in a process of its own (without it, one at
-    # a time, and a second lane would wait for the first to end)
-    extra = ["--fork"] if lanes > 1 else []
-    with StoreSCP(tmp_path / "archive", log=tmp_path / "storescp.log", extra=extra) as archive:
-        with Node(config(tmp_path, archive.port, lanes), on_outcome=collect) as nd:
+    with StoreSCP(tmp_path / "archive", log=tmp_path / "storescp.log") as archive:
+        with Node(config(tmp_path, archive.port), on_outcome=collect) as nd:
             storescu(nd.port, files, calling_ae=SCANNER)
             (outcome,) = collect.wait(1)
             assert outcome.ok, outcome.error
             assert outcome.methods == ["mtr_asym", "apt_star"]
             got = archive.wait_for(outcome.objects)
-        # two methods x (4 MR + 4 SC + 1 PM): every kind in one batch of its own, sent as
-        # built; the whole pass over `lanes` associations kept open (batches of one object
-        # go over the first)
+        # two methods x (4 MR + 4 SC + 1 PM): every kind in a batch of its
+        # own, sent as built, the whole pass over one association kept open
         assert outcome.objects == 2 * (SLICES + SLICES + 1)
         uids = [str(dcmread(f, stop_before_pixels=True).SOPInstanceUID) for f in got]
         assert len(uids) == len(set(uids)) == outcome.objects
-        assert archive.associations() == lanes
+        assert archive.associations() == 1
         rec = outcome.record
         assert rec["primary_ms"] <= rec["total_ms"]
