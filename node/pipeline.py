@@ -78,7 +78,7 @@ class Prepared:
     """The B0-corrected rows once computed (or given: :meth:`of_voxels`)."""
     given: bool = False
     """``corrected`` was given, not computed from ``zv_uncorrected`` and ``shift_v``."""
-    _cache: dict[object, object] = field(default_factory=dict, repr=False, compare=False)
+    _cache: dict[object, np.ndarray] = field(default_factory=dict, repr=False, compare=False)
     _lock: threading.Lock = field(default_factory=threading.Lock, repr=False, compare=False)
 
     def __getstate__(self) -> dict[str, object]:
@@ -112,8 +112,8 @@ class Prepared:
         with self._lock:
             if self.corrected is None:
                 t0 = time.perf_counter()
-                self.corrected = _correct_rows(self.zv_uncorrected, self.offsets_ppm,
-                                               self.shift_v).z
+                self.corrected = quant.resample_shifted(self.zv_uncorrected, self.offsets_ppm,
+                                                        self.shift_v)
                 self.seconds["b0_resample"] = time.perf_counter() - t0
             return self.corrected
 
@@ -133,10 +133,9 @@ class Prepared:
                     assert self.corrected is not None
                     self._cache[key] = self.corrected[:, union]
                 else:
-                    self._cache[key] = _correct_rows(self.zv_uncorrected, self.offsets_ppm,
-                                                     self.shift_v, columns=union).z
+                    self._cache[key] = quant.resample_shifted(
+                        self.zv_uncorrected, self.offsets_ppm, self.shift_v, columns=union)
             band = self._cache[key]
-        assert isinstance(band, np.ndarray)
         return band[:, np.searchsorted(union, cols)], self.offsets_ppm[cols]
 
     def volume(self, rows: np.ndarray) -> np.ndarray:
@@ -150,18 +149,14 @@ class Prepared:
         """``(slices, rows, cols, n_sat)`` B0-corrected spectra, NaN outside the mask."""
         if "z" not in self._cache:
             self._cache["z"] = self.volume(self.zv)
-        z = self._cache["z"]
-        assert isinstance(z, np.ndarray)
-        return z
+        return self._cache["z"]
 
     @property
     def z_uncorrected(self) -> np.ndarray:
         """:attr:`z` before the B0 correction."""
         if "zu" not in self._cache:
             self._cache["zu"] = self.volume(self.zv_uncorrected)
-        z = self._cache["zu"]
-        assert isinstance(z, np.ndarray)
-        return z
+        return self._cache["zu"]
 
 
 @dataclass
@@ -249,7 +244,7 @@ def prepare(
         shift = shift.astype(zv.dtype, copy=False)
         given_v = shift.reshape(-1)[index]
     if given_v is None:
-        shift_v = _estimate_rows(zv, spec.offsets_ppm)
+        shift_v = quant.estimate_b0_shift(zv, spec.offsets_ppm)
         shift = np.full(mask.shape, np.nan, dtype=zv.dtype)
         shift.reshape(-1)[index] = shift_v
     else:
@@ -276,23 +271,6 @@ def prepare(
         b0_source="internal" if b0_shift_ppm is None else "wassr",
         m0_source="series" if m0 is None else "companion",
     )
-
-
-def _estimate_rows(zv: np.ndarray, offsets_ppm: np.ndarray) -> np.ndarray:
-    """:func:`quant.estimate_b0_shift` of the rows ``zv``. (Split over two threads it was
-    slower here, 179 against 159 ms for prepare + MTRasym + APT* of the 20-slice phantom,
-    medians of 6: the estimate holds the interpreter lock too much to pay.)"""
-    return quant.estimate_b0_shift(zv, offsets_ppm)
-
-
-def _correct_rows(zv: np.ndarray, offsets_ppm: np.ndarray, shift_v: np.ndarray, *,
-                  columns: np.ndarray | None = None) -> quant.B0Result:
-    """:func:`quant.correct_b0` of the rows ``zv`` with their shift (at ``columns`` only,
-    when given)."""
-    if columns is None:
-        return quant.correct_b0(zv, offsets_ppm, shift_ppm=shift_v)
-    z = quant.resample_shifted(zv, offsets_ppm, shift_v, columns=columns)
-    return quant.B0Result(z=z, shift_ppm=shift_v, valid=np.isfinite(shift_v))
 
 
 def _frame_times(series: AssembledSeries) -> np.ndarray | None:
