@@ -28,11 +28,10 @@ from dataclasses import replace
 from typing import Any
 
 import numpy as np
-from pydicom.uid import ParametricMapStorage as PARAMETRIC_MAP_STORAGE
 
 from node import pipeline
 from node.config import NodeConfig
-from node.service import DeferredJob, Processor, SeriesOutcome
+from node.service import DeferredJob, Processor, SeriesOutcome, parametric_map_of
 from node.timing import SeriesClock
 from node.types import AssembledSeries, OutputBatch
 
@@ -206,8 +205,7 @@ class DaskEngine:
                     n_voxels=int(np.count_nonzero(job.prep.mask)))
                 # the processor builds and delivers the objects exactly as in its own pass
                 built = processor._emit(job.series, job.protocol, job.prep, res, clock, outcome)
-                fitted.append((res, next((d for d in built
-                                          if d.SOPClassUID == PARAMETRIC_MAP_STORAGE), None)))
+                fitted.append((res, parametric_map_of(built)))
             if fitted:  # the deferred pass's own report, as Processor.run_deferred sends it
                 figures, reasons = processor._qc(job.prep, job.protocol)
                 processor._reports(job.series, job.protocol, job.prep, job.reported + fitted,

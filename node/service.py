@@ -18,7 +18,7 @@ from collections.abc import Callable, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor, wait
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeVar
 
 import numpy as np
 from pydicom import Dataset
@@ -61,6 +61,7 @@ log = logging.getLogger("cest_node.service")
 #: Output kinds in the order they are built and sent (the viewer-friendly ones first).
 OUTPUT_ORDER = ("derived_mr", "secondary_capture", "parametric_map")
 
+T = TypeVar("T")
 Deliver = Callable[[OutputBatch, SeriesClock], bool]
 Submit = Callable[[OutputBatch, SeriesClock], "Future[bool]"]
 
@@ -95,6 +96,11 @@ class SeriesOutcome:
     """The deferred pass stopped on shutdown (it runs again at the next start)."""
     pending: list[tuple[str, Any]] = field(default_factory=list, repr=False, compare=False)
     """Batches handed to the processor's ``submit`` and not yet settled (label, future)."""
+
+
+def parametric_map_of(datasets: Sequence[Dataset]) -> Dataset | None:
+    """The Parametric Map among a method's built outputs (None when it has none)."""
+    return next((d for d in datasets if d.SOPClassUID == PARAMETRIC_MAP), None)
 
 
 def output_series_uid(source_series_uid: str, method: str, kind: str) -> str:
@@ -155,9 +161,6 @@ class Processor:
         self.config = config
         self.deliver = deliver
         self.submit = submit
-        self.primary_first = True
-        """With ``submit``: wait for the primary's objects to be stored before building the
-        next method's (its compute still runs beside the sends)."""
         self.cost = cost or CostModel.from_registry(METHODS)
         self.keep_maps = keep_maps
 
@@ -225,8 +228,7 @@ class Processor:
                     res = pipeline.compute(job.prep, name, chunk_voxels=self.CHUNK_VOXELS,
                                            between_chunks=progress)
                 built = self._emit(series, protocol, job.prep, res, clock, outcome, note=note)
-                fitted.append((res, next((d for d in built if d.SOPClassUID == PARAMETRIC_MAP),
-                                         None)))
+                fitted.append((res, parametric_map_of(built)))
                 log.info("series %s: deferred %s done in %.1f s", series.key, name, res.seconds)
             except pipeline.Abandoned as exc:
                 outcome.ok = False
@@ -327,7 +329,7 @@ class Processor:
                 res = pipeline.compute(prep, name)
             measured[name] = res.seconds
             self.cost.learn(name, seconds=res.seconds, n_voxels=max(res.n_voxels, 1))
-            if primary_sent is not None and self.primary_first:
+            if primary_sent is not None:
                 # the primary's objects go out before this method's are built: building
                 # holds the GIL and would slow every send of the primary (measured with
                 # Orthanc: 41 primary objects in 0.9 s while the next method was built
@@ -337,8 +339,7 @@ class Processor:
                 primary_sent = None
             built = self._emit(series, protocol, prep, res, clock, outcome, note=note,
                                stream=True)
-            results.append((res, next((d for d in built if d.SOPClassUID == PARAMETRIC_MAP),
-                                      None)))
+            results.append((res, parametric_map_of(built)))
             if name == plan.primary:
                 self._when_sent(outcome, lambda: clock.mark("primary_ack"))
                 if outcome.pending:
@@ -458,6 +459,7 @@ class Processor:
         source_uid = str(series.references[0].SeriesInstanceUID)
         source_number = series.references[0].get("SeriesNumber")
         datasets: list[Dataset] = []
+        streaming = stream and self.submit is not None
         lo_hi = pipeline.display_range(res.values)
         for kind in OUTPUT_ORDER:
             if kind not in protocol.outputs:
@@ -482,10 +484,10 @@ class Processor:
                 outcome.error = outcome.error or f"{name} {kind}: {type(exc).__name__}: {exc}"
                 continue
             datasets.extend(built)
-            if stream and self.submit is not None:
+            if streaming:
                 self._hand_over(OutputBatch(series.key, built, label=name), clock, outcome,
                                 stream=True)
-        if not (stream and self.submit is not None):
+        if not streaming:
             self._hand_over(OutputBatch(series.key, datasets, label=name), clock, outcome,
                             stream=False)
         outcome.objects += len(datasets)
@@ -753,12 +755,7 @@ class Node:
                                       series_key=batch.key, datasets=chosen)
 
         with clock.stage(f"send:{batch.label}"):
-            if len(dests) == 1:
-                unsent = [one(dests[0])]
-            else:
-                with ThreadPoolExecutor(max_workers=max(len(dests), 1),
-                                        thread_name_prefix="send") as pool:
-                    unsent = list(pool.map(one, dests))
+            unsent = _each_destination(one, dests)
         self.metrics.observe_send(batch.label, reports)
         if sum(unsent):
             clock.info["unsent"] = clock.info.get("unsent", 0) + sum(unsent)
@@ -771,12 +768,10 @@ class Node:
                           streamed: bool = False) -> bool:
         ok = True
         with clock.stage(f"send:{batch.label}"):
-            if len(self.config.destinations) == 1:
-                dest = self.config.destinations[0]
-                reports = [self.sender.send(batch.datasets, dest, key=batch.key,
-                                            session=self._session(dest, streamed))]
-            else:
-                reports = self.sender.send_batch(batch, self.config.destinations)
+            reports = _each_destination(
+                lambda dest: self.sender.send(batch.datasets, dest, key=batch.key,
+                                              session=self._session(dest, streamed)),
+                list(self.config.destinations))
         self.metrics.observe_send(batch.label, reports)
         for rep in reports:
             if not rep.ok:
@@ -787,6 +782,15 @@ class Node:
                 log.error("series %s: %d objects not stored at %s; kept in %s", batch.key,
                           len(failed), rep.destination, folder)
         return ok
+
+
+def _each_destination(send: Callable[[Any], T], destinations: Sequence[Any]) -> list[T]:
+    """``send(dest)`` for every destination, in parallel threads when there are several."""
+    if len(destinations) == 1:
+        return [send(destinations[0])]
+    with ThreadPoolExecutor(max_workers=max(len(destinations), 1),
+                            thread_name_prefix="send") as pool:
+        return list(pool.map(send, destinations))
 
 
 def write_datasets(datasets: Sequence[Dataset], folder: str | Path) -> list[Path]:
