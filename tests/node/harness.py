@@ -15,11 +15,12 @@ from typing import Any
 
 from pydicom import Dataset
 
-from node.config import NodeConfig, parse_config
+from node.assemble import Assembler
+from node.config import NodeConfig, default_config, parse_config
 from node.send import echo
 from node.service import Node, SeriesOutcome
 from node.synth import series_from_arrays, write_series
-from node.types import series_key
+from node.types import AssembledSeries, series_key
 from quant.phantom import make_phantom
 from tests.peers import StoreSCP, storescu
 
@@ -51,6 +52,18 @@ def node_config(tmp_path: Path, dest: tuple[str, int] | None = None, *, tls: dic
     if tls is not None:
         data["tls"] = tls
     return parse_config(data, base_dir=tmp_path)
+
+
+def assembled(datasets: list[Dataset], cfg: NodeConfig | None = None) -> AssembledSeries:
+    """The one series the datasets make, through a real Assembler (``default_config()``
+    unless ``cfg``), without a network: for tests of what comes after assembly."""
+    done: list[AssembledSeries] = []
+    with Assembler(cfg or default_config(), done.append) as asm:
+        for ds in datasets:
+            asm.add(ds)
+        asm.flush(timeout=30)
+    assert len(done) == 1
+    return done[0]
 
 
 def good_series(seed: str, **patient: str) -> list[Dataset]:

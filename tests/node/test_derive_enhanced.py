@@ -19,26 +19,15 @@ from pydicom.sequence import Sequence as DicomSequence
 from pydicom.uid import EnhancedMRImageStorage
 
 from node import pipeline
-from node.assemble import Assembler
-from node.config import default_config
 from node.derive import BUILDERS, REPORT_BUILDERS, DerivedRequest, ReportRequest
 from node.service import write_datasets
 from node.synth import enhanced_series, series_from_arrays
 from quant.phantom import make_phantom
+from tests.node.harness import assembled
 from tests.peers import assert_dciodvfy_clean
 
 SLICES, SIZE, SEED = 3, 24, 5
 PM_UID = "1.2.826.0.1.3680043.10.77.1"
-
-
-def _assemble(datasets):
-    done = []
-    with Assembler(default_config(), done.append) as asm:
-        for ds in datasets:
-            asm.add(ds)
-        asm.flush(timeout=30)
-    assert len(done) == 1
-    return done[0]
 
 
 @pytest.fixture(scope="module")
@@ -53,7 +42,7 @@ def enhanced(phantom):
 
 @pytest.fixture(scope="module")
 def series(enhanced):
-    return _assemble([enhanced])
+    return assembled([enhanced])
 
 
 @pytest.fixture(scope="module")
@@ -93,7 +82,7 @@ def _per_frame_geometry(enhanced):
 def test_pm_geometry_comes_from_the_functional_groups(series, mtr, phantom, enhanced):
     _, res = mtr
     pm = _pm(series.references, res.values)
-    classic = _assemble(series_from_arrays(phantom.signal, phantom.offsets_ppm,
+    classic = assembled(series_from_arrays(phantom.signal, phantom.offsets_ppm,
                                            seed="derive-enh"))
     assert _geometry(pm) == _geometry(_pm(classic.references, res.values))
     shared = enhanced.SharedFunctionalGroupsSequence[0]
@@ -108,7 +97,7 @@ def test_pm_geometry_comes_from_the_functional_groups(series, mtr, phantom, enha
 def test_per_frame_orientation_and_measures_give_the_same_pm(series, mtr, enhanced, tmp_path):
     _, res = mtr
     moved = _per_frame_geometry(enhanced)
-    got = _assemble([moved])
+    got = assembled([moved])
     pm = _pm(got.references, res.values)
     assert _geometry(pm) == _geometry(_pm(series.references, res.values))
     # the instance the request keeps is not changed by the builder
@@ -121,14 +110,14 @@ def test_per_frame_pixel_spacing_that_differs_is_named(enhanced, mtr):
     _, res = mtr
     moved = _per_frame_geometry(enhanced)
     moved.PerFrameFunctionalGroupsSequence[5].PixelMeasuresSequence[0].PixelSpacing = [2.0, 2.0]
-    got = _assemble([moved])
+    got = assembled([moved])
     with pytest.raises(ValueError, match="PixelMeasuresSequence of frame 6 differs"):
         _pm(got.references, res.values)
 
 
 def test_mixed_and_broken_frame_views_are_refused(series, mtr, phantom):
     _, res = mtr
-    classic = _assemble(series_from_arrays(phantom.signal, phantom.offsets_ppm,
+    classic = assembled(series_from_arrays(phantom.signal, phantom.offsets_ppm,
                                            seed="derive-enh"))
     mixed = [series.references[0], *classic.references[1:]]
     with pytest.raises(ValueError, match=r"references\[1\] is a single-frame image"):

@@ -26,13 +26,13 @@ from pydicom.uid import (
 )
 
 from node import pipeline
-from node.assemble import Assembler, AssemblyError, read_offset_ppm
+from node.assemble import AssemblyError, read_offset_ppm
 from node.config import OffsetRule, default_config
 from node.derive import BUILDERS, DerivedRequest
 from node.service import Node
 from node.synth import enhanced_series, series_from_arrays, write_series
 from quant.phantom import make_phantom
-from tests.node.harness import Collect
+from tests.node.harness import Collect, assembled
 from tests.peers import StoreSCP, assert_dciodvfy_clean, storescu
 
 SLICES, SIZE, SEED = 2, 32, 21
@@ -50,15 +50,7 @@ def enhanced(phantom):
 
 def _assemble(datasets, protocol=None):
     cfg = default_config()
-    if protocol is not None:
-        cfg = cfg.with_overrides(protocols=(protocol,))
-    done = []
-    with Assembler(cfg, done.append) as asm:
-        for ds in datasets:
-            asm.add(ds)
-        asm.flush(timeout=30)
-    assert len(done) == 1
-    return done[0]
+    return assembled(datasets, cfg if protocol is None else cfg.with_overrides(protocols=(protocol,)))
 
 
 @pytest.fixture(scope="module")

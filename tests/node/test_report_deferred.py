@@ -20,13 +20,12 @@ from pydicom.sr.codedict import codes
 from pydicom.uid import Comprehensive3DSRStorage, ParametricMapStorage
 
 from node import pipeline
-from node.assemble import Assembler
 from node.config import default_config
 from node.derive.sr import QC_GROUP_ID, VOXEL_COUNT
 from node.service import DeferredJob, Node, Processor
 from node.synth import series_from_arrays, write_series
 from quant.phantom import make_phantom
-from tests.node.harness import Collect
+from tests.node.harness import Collect, assembled
 from tests.node.test_derive_reports import _measurements, numpy_hemispheres
 from tests.peers import StoreSCP, assert_dciodvfy_clean, storescu
 
@@ -47,16 +46,6 @@ def phantom():
 @pytest.fixture(scope="module")
 def datasets(phantom):
     return series_from_arrays(phantom.signal, phantom.offsets_ppm, seed="report-deferred")
-
-
-def _assemble(cfg, datasets):
-    done = []
-    with Assembler(cfg, done.append) as asm:
-        for ds in datasets:
-            asm.add(ds)
-        asm.flush(timeout=30)
-    assert len(done) == 1
-    return done[0]
 
 
 def _check_numbers(group, values, mask):
@@ -115,7 +104,7 @@ def test_deferred_pass_sends_a_report_of_every_map(tmp_path, datasets):
     groups = {str(g.tracking_identifier): g for g in sr.content.get_image_measurement_groups()}
     assert set(groups) == {*FREE, *FITS, QC_GROUP_ID}
     # the brain mask the node used: the same series prepared offline by the same pipeline
-    prep = pipeline.prepare_series(_assemble(cfg, datasets), proto)
+    prep = pipeline.prepare_series(assembled(datasets, cfg), proto)
     maps = {**first.maps, **later.maps}
     for name in (*FREE, *FITS):
         _check_numbers(groups[name], maps[name], prep.mask)
@@ -148,7 +137,7 @@ def _run(cfg, series, **deferred):
 def test_resumed_and_abandoned_deferred_passes(datasets):
     proto = _protocol(outputs=("parametric_map", "structured_report", "segmentation"))
     cfg = default_config().with_overrides(protocols=(proto,))
-    series = _assemble(cfg, datasets)
+    series = assembled(datasets, cfg)
     job, later, batches, proc = _run(cfg, series)
     assert later.ok, later.error
     # the deferred report holds the SR only here: the Segmentation is not repeated
