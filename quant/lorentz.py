@@ -136,7 +136,8 @@ def _param_layout(pools):
 #: (measured in tests/bench/bench_fits.py; 5 pools x 61 offsets x 128 voxels is 0.3 MB each).
 _CHUNK = 128
 
-#: ``J^T J`` and ``J^T r`` of the Lorentzian fits in float32 (see :func:`_residual_normal`).
+#: The Jacobian, ``J^T J`` and ``J^T r`` of the Lorentzian fits in float32 (the residuals
+#: stay float64; see :func:`_residual_normal`).
 GRAM_F32 = True
 
 
@@ -196,26 +197,30 @@ class _Scratch:
     """Work buffers of one chunk of :func:`_residual_normal`, allocated once per call."""
 
     def __init__(self, n, k, n_off, n_par, f32):
+        dt = np.float32 if f32 else np.float64
         self.u = np.empty((n, k, n_off))
         self.q = np.empty((n, k, n_off))
-        self.u2 = np.empty((n, k, n_off))
-        self.lor = np.empty((n, k, n_off))
-        self.jt = np.empty((n, n_par + 1, n_off))  # rows: d model / d p, then the residual
-        self.jt[:, 0, :] = 1.0
-        dt = np.float32 if f32 else np.float64
-        self.jt_lo = np.empty((n, n_par + 1, n_off), dt) if f32 else self.jt
-        self.j = np.empty((n, n_off, n_par + 1), dt)
-        self.gram = np.empty((n, n_par + 1, n_par + 1), dt)
+        self.res = np.empty((n, n_off))
+        self.q_lo = np.empty((n, k, n_off), dt)
+        self.u_lo = np.empty((n, k, n_off), dt)
+        self.t_lo = np.empty((n, k, n_off), dt)
+        # rows: d model / d p for every parameter but the baseline, then the residual
+        self.jt = np.empty((n, n_par, n_off), dt)
+        self.j = np.empty((n, n_off, n_par), dt)
+        self.gram = np.empty((n, n_par, n_par), dt)
 
 
 def _residual_normal(params, x, data, weights=None, *, f32=GRAM_F32):
     """Residuals ``w (model - data)`` (n, N), ``J^T J`` (n, P, P) and ``J^T r`` (n, P).
 
-    One fused pass per chunk of :data:`_CHUNK` voxels (the same formulas as :func:`_kernel`):
-    the Jacobian rows and the residual row are written into one ``(chunk, P + 1, N)`` buffer
-    and the Gram matrix of its rows, one batched matrix product, holds ``J^T J`` and ``J^T r``;
-    the Jacobian never leaves the cache. With ``f32`` that product is taken in float32 (the
-    residuals and everything the solver decides on stay float64).
+    One fused pass per chunk of :data:`_CHUNK` voxels (the same formulas as :func:`_kernel`).
+    The model and the residuals are float64; with ``f32`` the Jacobian is formed in float32
+    from the float64 line shapes, and its Gram products are float32 (the residuals, the cost
+    and everything the solver decides on stay float64). The Jacobian rows of every parameter
+    but the baseline, and the residual row, are written into one ``(chunk, P, N)`` buffer
+    (``P`` rows: a multiple of the SIMD width for 5 pools) whose Gram matrix, one batched matrix
+    product, holds ``J^T J`` and ``J^T r``; the baseline's column of the Jacobian is the
+    weights, so its entries are weighted row sums. The Jacobian never leaves the cache.
     """
     params = np.asarray(params, dtype=np.float64)
     n, n_par = params.shape
@@ -223,55 +228,65 @@ def _residual_normal(params, x, data, weights=None, *, f32=GRAM_F32):
     r = np.empty((n, x.size))
     jtj = np.empty((n, n_par, n_par))
     g = np.empty((n, n_par))
+    dt = np.float32 if f32 else np.float64
+    wv = np.ones(x.size, dt) if weights is None else np.asarray(weights, dt)
+    w64 = None if weights is None else np.asarray(weights, np.float64)
     first = min(_CHUNK, n)
     scratch = _Scratch(first, k, x.size, n_par, f32)
     for s in range(0, n, _CHUNK):
         e = min(s + _CHUNK, n)
         sc = scratch if e - s == first else _Scratch(e - s, k, x.size, n_par, f32)
-        _normal_chunk(params[s:e], x, data[s:e], weights, r[s:e], jtj[s:e], g[s:e], sc, n_par)
+        _normal_chunk(params[s:e], x, data[s:e], w64, wv, r[s:e], jtj[s:e], g[s:e], sc, n_par)
     return r, jtj, g
 
 
-def _normal_chunk(p, x, data, weights, r, jtj, g, sc, n_par):
+def _normal_chunk(p, x, data, w64, wv, r, jtj, g, sc, n_par):
+    m = p.shape[0]
     c = p[:, 0:1]
     a = p[:, 1::3]
     w = p[:, 2::3]
     d = p[:, 3::3].copy()
     d[:, 1:] += d[:, :1]  # absolute positions
     h2 = 0.25 * w * w
-    u, q, u2, lor, jt = sc.u, sc.q, sc.u2, sc.lor, sc.jt
+    ah2 = a * h2
+    u, q, res, jt = sc.u, sc.q, sc.res, sc.jt
     np.subtract(x[None, None, :], d[:, :, None], out=u)
-    np.multiply(u, u, out=u2)
-    np.add(u2, h2[:, :, None], out=q)
-    np.reciprocal(q, out=q)
-    np.multiply(q, (a * h2)[:, :, None], out=lor)
-    res = jt[:, n_par, :]
-    np.subtract(c, lor[:, 0, :], out=res)
-    for i in range(1, lor.shape[1]):
-        res -= lor[:, i, :]
-    res -= data  # model - data
-    np.multiply(q, -h2[:, :, None], out=jt[:, 1:n_par:3, :])  # d model / dA
-    lor *= q
-    lor *= -2.0  # -2 L q
-    u2 *= lor
-    u2 /= w[:, :, None]
-    jt[:, 2:n_par:3, :] = u2  # d model / dw = -2 L u^2 q / w
-    pos = jt[:, 3:n_par:3, :]
-    np.multiply(lor, u, out=pos)  # d model / d(absolute position) = -2 L u q
-    for i in range(1, pos.shape[1]):  # the water position moves every pool
-        jt[:, 3, :] += pos[:, i, :]
-    if weights is not None:
-        jt *= weights
+    np.multiply(u, u, out=q)
+    q += h2[:, :, None]
+    np.reciprocal(q, out=q)  # q = 1 / (h^2 + u^2)
+    # residual (float64): c - sum_i A_i h_i^2 q_i - data
+    np.matmul(ah2[:, None, :], q, out=res[:, None, :])
+    np.subtract(c, res, out=res)
+    res -= data
+    if w64 is not None:
+        res *= w64
     r[...] = res
-    jlo = sc.jt_lo
-    if jlo is not jt:
-        jlo[...] = jt
-    np.copyto(sc.j, jlo.transpose(0, 2, 1))
-    np.matmul(jlo, sc.j, out=sc.gram)
-    jtj[...] = sc.gram[:, :n_par, :n_par]
-    g[...] = sc.gram[:, :n_par, n_par]
-    if weights is not None:
-        jt[:, 0, :] = 1.0
+    # Jacobian rows (row = parameter - 1), in the working precision
+    ql, ul, tl = sc.q_lo, sc.u_lo, sc.t_lo
+    ql[...] = q
+    ul[...] = u
+    np.multiply(ql, (-h2)[:, :, None].astype(ql.dtype), out=jt[:, 0 : n_par - 1 : 3, :])  # dA
+    np.multiply(ql, ql, out=tl)
+    tl *= (-2.0 * ah2)[:, :, None].astype(tl.dtype)  # -2 L q
+    dd = jt[:, 2 : n_par - 1 : 3, :]
+    np.multiply(tl, ul, out=dd)  # d model / d(absolute position) = -2 L u q
+    ul *= (1.0 / w)[:, :, None].astype(ul.dtype)
+    np.multiply(dd, ul, out=jt[:, 1 : n_par - 1 : 3, :])  # d model / dw = -2 L u^2 q / w
+    for i in range(1, dd.shape[1]):  # the water position moves every pool
+        jt[:, 2, :] += dd[:, i, :]
+    if w64 is not None:
+        jt[:, : n_par - 1, :] *= wv
+    jt[:, n_par - 1, :] = res
+    np.copyto(sc.j, jt.transpose(0, 2, 1))
+    np.matmul(jt, sc.j, out=sc.gram)
+    # the baseline's Jacobian column is the weights: its products are weighted row sums
+    sums = (jt.reshape(m * n_par, -1) @ wv).reshape(m, n_par)
+    jtj[:, 0, 0] = float(np.dot(wv.astype(np.float64), wv))
+    jtj[:, 0, 1:] = sums[:, : n_par - 1]
+    jtj[:, 1:, 0] = sums[:, : n_par - 1]
+    jtj[:, 1:, 1:] = sc.gram[:, : n_par - 1, : n_par - 1]
+    g[:, 0] = sums[:, n_par - 1]
+    g[:, 1:] = sc.gram[:, : n_par - 1, n_par - 1]
 
 
 def z_model(offsets_ppm, params, pools=POOLS_5):
