@@ -56,6 +56,8 @@ __all__ = [
     "FrameHeader",
     "Placed",
     "Prepared",
+    "header_uid",
+    "header_us",
     "private_block_element",
     "read_offset_ppm",
     "slice_geometry",
@@ -388,6 +390,32 @@ def _raw_text(ds: Dataset, tag: int) -> str | None:
             or b"\x1b" in raw):
         return None
     return raw.rstrip(b"\0 ").decode("ascii")
+
+
+def header_uid(ds: Dataset, tag: int, keyword: str) -> str:
+    """A UID element's text, as ``str(ds.<keyword>)`` gives it; raises AttributeError when
+    absent, as that does.
+
+    A plain UID of one value not yet converted (explicit or implicit VR) is read from its
+    bytes: ASCII, trailing NULs and spaces stripped, as pydicom's ``convert_UI``. Anything
+    else (converted, empty, multi-valued, non-ASCII) takes pydicom's path. pydicom's
+    conversion costs about 19 us per UID (value hooks, the validation regex), four UIDs per
+    instance on the receive path; this about 1 us (measured with timeit here).
+    """
+    elem = ds._dict.get(tag)  # type: ignore[call-overload]
+    if type(elem) is RawDataElement and elem.VR in ("UI", None):
+        raw = elem.value
+        if isinstance(raw, bytes) and raw and raw.isascii() and b"\\" not in raw:
+            text = raw.rstrip(b"\0 ").decode("ascii")
+            if text:
+                return text
+    return str(getattr(ds, keyword))
+
+
+def header_us(ds: Dataset, tag: int, keyword: str) -> int:
+    """``int(ds.get(keyword, 0) or 0)`` for a US element, read from its bytes where plain."""
+    fast = _us_value(ds, tag)
+    return fast if fast is not None else int(ds.get(keyword, 0) or 0)
 
 
 def _raw_int(ds: Dataset, tag: int) -> int | None:

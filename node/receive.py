@@ -58,7 +58,7 @@ from pynetdicom import AE, PYNETDICOM_IMPLEMENTATION_UID, PYNETDICOM_IMPLEMENTAT
 from pynetdicom.sop_class import Verification  # type: ignore[attr-defined]
 
 from node import fastpath
-from node.assemble import Assembler, AssemblyError, Placed
+from node.assemble import Assembler, AssemblyError, Placed, header_uid, header_us
 from node.config import NodeConfig
 from node.spool import Spool, SpoolError
 from node.tls import server_context
@@ -362,8 +362,9 @@ class Receiver:
                       "min_free_mb %g", key, free_mb, cfg.min_free_mb)
             return _status(STATUS_OUT_OF_RESOURCES, "spool free space below min_free_mb")
         try:
-            rows, cols = int(ds.get("Rows", 0) or 0), int(ds.get("Columns", 0) or 0)
-            frames = int(ds.get("NumberOfFrames", 1) or 1)
+            rows = header_us(ds, 0x00280010, "Rows")
+            cols = header_us(ds, 0x00280011, "Columns")
+            frames = int(ds.get("NumberOfFrames", 1) or 1) if 0x00280008 in ds else 1
         except (TypeError, ValueError):
             return None  # prepare() names the problem
         problem = ""
@@ -466,9 +467,10 @@ class Receiver:
         try:
             if ds is None:
                 raise parse_error
-            sop_class = str(ds.SOPClassUID)
-            sop_uid = str(ds.SOPInstanceUID)
-            study_uid, series_uid = str(ds.StudyInstanceUID), str(ds.SeriesInstanceUID)
+            sop_class = header_uid(ds, 0x00080016, "SOPClassUID")
+            sop_uid = header_uid(ds, 0x00080018, "SOPInstanceUID")
+            study_uid = header_uid(ds, 0x0020000D, "StudyInstanceUID")
+            series_uid = header_uid(ds, 0x0020000E, "SeriesInstanceUID")
             prefix, ds.file_meta = fastpath.part10_prefix_and_meta(
                 sop_class, sop_uid, ts, implementation_class_uid=PYNETDICOM_IMPLEMENTATION_UID,
                 implementation_version=PYNETDICOM_IMPLEMENTATION_VERSION)

@@ -9,6 +9,7 @@ from __future__ import annotations
 import hashlib
 import uuid
 from dataclasses import dataclass, field
+from functools import lru_cache
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -25,11 +26,13 @@ def uid_from(*parts: object) -> str:
     return "2.25." + str(uuid.uuid5(_UID_NAMESPACE, "/".join(str(p) for p in parts)).int)
 
 
+@lru_cache(maxsize=1024)
 def series_key(study_uid: str, series_uid: str) -> str:
     """Pseudonymous key of a series for logs and file names.
 
     A truncated SHA-256 of the study and series instance UIDs: stable for the same
     series, and it reveals no patient attribute (common practice for log pseudonyms).
+    Cached: every instance of a series asks for the same key.
     """
     digest = hashlib.sha256(f"{study_uid}\x00{series_uid}".encode()).hexdigest()
     return f"s-{digest[:16]}"

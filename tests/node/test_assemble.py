@@ -405,3 +405,33 @@ def test_prepare_from_raw_bytes_equals_prepare_from_converted_values():
     assert asm.prepare(_encoded(bad)) is not None
     bad.SeriesDescription = "OTHER CEST APT phantom"
     assert asm.prepare(_encoded(bad)) is None
+
+
+@pytest.mark.parametrize("implicit", [False, True])
+def test_header_uid_and_us_read_raw_values_as_pydicom_does(implicit):
+    # UIDs are padded with a trailing NUL to an even length (PS3.5 9.1, from memory); the
+    # raw read must give exactly what pydicom's conversion gives, explicit and implicit VR
+    from pydicom.dataset import Dataset
+    from pydicom.filebase import DicomBytesIO
+    from pydicom.filereader import read_dataset
+    from pydicom.filewriter import write_dataset
+
+    from node.assemble import header_uid, header_us
+    ds = Dataset()
+    ds.SOPInstanceUID = "1.2.3.45"  # odd length: written with a NUL pad
+    ds.StudyInstanceUID = "1.2.3.4"
+    ds.SeriesInstanceUID = ["1.2.3", "4.5.6"]  # multi-valued: pydicom's path
+    ds.Rows = 96
+    out = DicomBytesIO()
+    out.is_little_endian, out.is_implicit_VR = True, implicit
+    write_dataset(out, ds)
+    raw = read_dataset(BytesIO(out.getvalue()), implicit, True)
+    for tag, kw in ((0x00080018, "SOPInstanceUID"), (0x0020000D, "StudyInstanceUID"),
+                    (0x0020000E, "SeriesInstanceUID")):
+        expected = str(read_dataset(BytesIO(out.getvalue()), implicit, True)[kw].value)
+        assert header_uid(raw, tag, kw) == expected
+    assert header_uid(raw, 0x00080018, "SOPInstanceUID") == "1.2.3.45"
+    assert header_us(raw, 0x00280010, "Rows") == 96
+    assert header_us(raw, 0x00280011, "Columns") == 0  # absent: 0, as ds.get(...) or 0
+    with pytest.raises(AttributeError):
+        header_uid(raw, 0x00080016, "SOPClassUID")  # absent: as str(ds.SOPClassUID)
