@@ -21,8 +21,15 @@ Bounds (box constraints) are handled by **projection with an active set**: a par
 on a bound whose gradient points out of the box is frozen for that iteration (its step is 0:
 its diagonal in the damped normal equations gets ``1e12`` times its own weight, which holds it
 to 1e-12 relative while the others see it through their coupling, the reduced system without
-re-indexing; its step is then set to exactly 0), the others take the damped step, and the
-trial point is projected onto the box. The gain ratio uses the projected
+re-indexing; its step is then set to exactly 0). A parameter whose step would cross a bound is
+held the same way at a prescribed step (onto the bound, or ``bound_approach`` of the way
+there) and the others are solved for again, up to three passes; what still crosses is
+projected onto the box. The parameters held off a bound in one trial are held from the start
+in the next (the crossing set rarely changes between steps, so one solve usually suffices),
+each released, and the system solved again without it, where its Lagrange multiplier (the
+damped model's gradient there) no longer pulls it towards that bound (the active-set test of
+quadratic programming: Nocedal & Wright, Numerical Optimization, 2nd ed. 2006, section 16.5,
+from memory). The gain ratio uses the projected
 step, so a projected step that does not reduce the cost is rejected like any other. This keeps
 the parameters exactly inside the box (no transform, so no flattened Jacobian near a bound)
 and lets a fit rest on a bound; ``at_bound`` in the result says where that happened, so the
@@ -289,23 +296,26 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
     cost_out = 0.5 * np.einsum("vm,vm->v", r, r)
     status = np.where(valid, STATUS_MAXITER, STATUS_INVALID)
     iters = np.zeros(n, dtype=np.int64)
-    diag = np.arange(n_par)
     span = np.where(np.isfinite(hi - lo), hi - lo, 1.0)
     near_tol = 1e-3 * span  # closer than this to a bound, a crossing step lands on the bound
+    stride = n_par + 1  # the diagonal of a C-contiguous (m, P, P) stack seen as (m, P * P)
 
-    # the active set, compacted: position in the block and its state
+    # the active set, compacted: position in the block and its state (the residuals are kept
+    # only where the Jacobian is formed apart from them)
     pos = np.flatnonzero(valid)
     p = p_out[pos]
-    r = r[pos]
+    r = None if eager else r[pos]
     cost = cost_out[pos]
     lam = np.full(pos.size, lambda0)
     nu = np.full(pos.size, 2.0)
     if eager:
-        jtj, grad = ne0[0][pos], ne0[1][pos]
+        jtj, grad = np.ascontiguousarray(ne0[0][pos]), ne0[1][pos]
     else:
         jtj, grad = _jacobian_normal(fun, jac, p, index[pos], r, lo, hi, n_res, n_par)
+        jtj = np.ascontiguousarray(jtj)
     del ne0
-    dscale = jtj[:, diag, diag].copy()
+    dscale = _diag(jtj, stride).copy()
+    side = np.zeros(p.shape, np.int8)
     n_it = 0
     while pos.size and n_it < max_iter:
         n_it += 1
@@ -313,62 +323,98 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
         frozen = ((p <= lo) & (grad > 0)) | ((p >= hi) & (grad < 0))
         g_free = np.where(frozen, 0.0, grad)
         done_g = np.max(np.abs(g_free), axis=1) < gtol
-        if np.any(done_g):
+        if done_g.any():
             status[pos[done_g]] = STATUS_GTOL
-            p_out[pos[done_g]] = p[done_g]
-            cost_out[pos[done_g]] = cost[done_g]
             keep = ~done_g
-            pos, p, r, cost, lam, nu = pos[keep], p[keep], r[keep], cost[keep], lam[keep], nu[keep]
-            jtj, grad, dscale = jtj[keep], grad[keep], dscale[keep]
-            frozen, g_free = frozen[keep], g_free[keep]
+            pos, p, r, cost, lam, nu, jtj, grad, dscale, side, frozen, g_free = _finish(
+                keep, pos, p_out, cost_out, p, r, cost, lam, nu, jtj, grad, dscale, side,
+                frozen, g_free,
+            )
             if pos.size == 0:
                 break
         d = np.maximum(dscale, 1e-12 * np.maximum(dscale.max(axis=1, keepdims=True), 1.0))
         a = jtj.copy()
-        a[:, diag, diag] += lam[:, None] * d
-        # a held parameter (frozen, or fixed by a crossing step below) gets a diagonal
-        # ``hold`` times its own: its step is then the prescribed value to 1e-12 relative and
-        # the others see it through their coupling, the reduced system without re-indexing
-        hold = _HOLD * (a[:, diag, diag] + d)
-        adiag = a[:, diag, diag]
-        if frozen.any():
-            a[:, diag, diag] = np.where(frozen, adiag + hold, adiag)
-        step = _solve(a, -g_free)
-        step[frozen] = 0.0
+        ad = _diag(a, stride)
+        ad += lam[:, None] * d
+        # a held parameter gets a diagonal ``hold`` times its own: its step is then the
+        # prescribed value to 1e-12 relative and the others see it through their coupling,
+        # the reduced system without re-indexing. Held are the frozen ones (step 0) and, as a
+        # prediction, those that crossed a bound in the previous trial (step ``approach`` of
+        # the way to that bound): the crossing set rarely changes from one step to the next,
+        # so the first solve is usually the final one
+        hold = _HOLD * (ad + d)
+        predicted = (side != 0) & ~frozen
+        dist = np.where(side < 0, lo - p, hi - p)
+        if approach < 1.0:
+            dist = np.where(np.abs(dist) > near_tol, approach * dist, dist)
+        fixed = frozen | predicted
+        held = np.where(predicted, dist, 0.0)
+        any_fixed = fixed.any()
+        if any_fixed:
+            ad += np.where(fixed, hold, 0.0)
+            step = _solve(a, np.where(fixed, ad * held, -g_free))
+            step = np.where(fixed, held, step)
+        else:
+            step = _solve(a, -g_free)
+        if predicted.any():
+            # a predicted hold is kept while the model still pulls the parameter towards its
+            # bound (the sign of its Lagrange multiplier, the gradient of the undamped-by-hold
+            # model there); released ones are solved for again, with the others still held
+            mu = grad + np.einsum("vpq,vq->vp", jtj, step) + lam[:, None] * d * step
+            release = predicted & (side * mu >= 0)
+            loc = np.flatnonzero(release.any(axis=1))
+            if loc.size:
+                fixed[loc] &= ~release[loc]
+                a_c = jtj[loc]
+                adc = _diag(a_c, stride)
+                adc += lam[loc, None] * d[loc]
+                fz = fixed[loc]
+                adc += np.where(fz, hold[loc], 0.0)
+                hz = np.where(fz, held[loc], 0.0)
+                step[loc] = np.where(fz, hz, _solve(a_c, np.where(fz, adc * hz, -g_free[loc])))
+                a[loc] = a_c
         # a step that crosses a bound: hold those parameters (on the bound, or ``approach`` of
         # the way there) and re-solve for the others (a few passes), instead of clipping a
         # correlated step
-        fixed = frozen.copy()
-        sub, a_sub = np.arange(p.shape[0]), a  # a later pass only revisits the voxels re-solved
+        sub, a_sub = None, a  # a later pass only revisits the voxels re-solved
         for _pass in range(3):
-            trial = p[sub] + step[sub]
-            crossing = ((trial < lo) | (trial > hi)) & ~fixed[sub]
+            if sub is None:
+                trial = p + step
+                crossing = ((trial < lo) | (trial > hi)) & ~fixed
+            else:
+                trial = p[sub] + step[sub]
+                crossing = ((trial < lo) | (trial > hi)) & ~fixed[sub]
             loc = np.flatnonzero(crossing.any(axis=1))
             if loc.size == 0:
                 break
-            cz = sub[loc]
+            cz = loc if sub is None else sub[loc]
+            cc = crossing[loc]
             to_bound = np.clip(trial[loc], lo, hi) - p[cz]
             if approach < 1.0:
                 to_bound = np.where(np.abs(to_bound) > near_tol, approach * to_bound, to_bound)
-            cc = crossing[loc]
-            held = np.where(fixed[cz], step[cz], 0.0) + np.where(cc, to_bound, 0.0)
-            fz = fixed[cz] | cc
+            fz_old = fixed[cz]
+            held_c = np.where(fz_old, step[cz], 0.0) + np.where(cc, to_bound, 0.0)
+            fz = fz_old | cc
             fixed[cz] = fz
             a_c = a_sub[loc]
-            ad = a_c[:, diag, diag]
-            # frozen ones already carry ``hold`` on the diagonal
-            ad = np.where(cc, ad + hold[cz], ad)
-            a_c[:, diag, diag] = ad
-            rhs = np.where(fz, ad * held, -g_free[cz])
-            step[cz] = np.where(fz, held, _solve(a_c, rhs))
+            adc = _diag(a_c, stride)
+            # held ones already carry ``hold`` on the diagonal
+            adc += np.where(cc, hold[cz], 0.0)
+            rhs = np.where(fz, adc * held_c, -g_free[cz])
+            step[cz] = np.where(fz, held_c, _solve(a_c, rhs))
             sub, a_sub = cz, a_c
+        del a, a_sub
         # what still crosses a bound is projected (``approach`` of the way to the bound)
-        p_new = np.clip(p + step, lo, hi)
+        trial = p + step
+        p_new = np.clip(trial, lo, hi)
         if approach < 1.0:
             to_bound = p_new - p
-            cut = (p_new != p + step) & (np.abs(to_bound) > near_tol)
+            cut = (p_new != trial) & (np.abs(to_bound) > near_tol)
             p_new = np.where(cut, p + approach * to_bound, p_new)
         delta = p_new - p
+        # the prediction for the next trial: the parameters held off a bound in this one
+        # (the frozen ones are found again from the gradient)
+        side = np.where(fixed & ~frozen, np.sign(step).astype(np.int8), np.int8(0))
         r_new, ne_new = _evaluate(fun, jac, p_new, index[pos], lo, hi, n_res, n_par, eager)
         cost_new = 0.5 * np.einsum("vm,vm->v", r_new, r_new)
         cost_new[~np.isfinite(cost_new)] = np.inf
@@ -388,9 +434,10 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
         pnorm = np.linalg.norm(p, axis=1)
         done_x = np.linalg.norm(delta, axis=1) < xtol * (xtol + pnorm)
         done_f = accept & (actual < ftol * cost) & ~done_x
-        p[accept] = p_new[accept]
-        r[accept] = r_new[accept]
-        cost[accept] = cost_new[accept]
+        np.copyto(p, p_new, where=accept[:, None])
+        if r is not None:
+            np.copyto(r, r_new, where=accept[:, None])
+        cost = np.where(accept, cost_new, cost)
         # hopeless damping: nothing more can be gained at this precision
         stuck = ~done_x & ~done_f & (lam > 1e16)
         going = ~(done_x | done_f | stuck)
@@ -398,30 +445,43 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
         status[pos[done_f]] = STATUS_FTOL
         # normal equations at the accepted points that go on
         k = accept & going
-        if np.any(k):
+        if k.any():
             if eager:  # computed with the trial residuals: copied in place, no gather
                 np.copyto(jtj, ne_new[0], where=k[:, None, None])
                 np.copyto(grad, ne_new[1], where=k[:, None])
-                np.maximum(dscale, jtj[:, diag, diag], out=dscale, where=k[:, None])
+                np.maximum(dscale, _diag(jtj, stride), out=dscale, where=k[:, None])
             else:
                 kk = np.flatnonzero(k)
                 jtj_k, grad_k = _jacobian_normal(fun, jac, p[kk], index[pos[kk]], r[kk], lo, hi,
                                                  n_res, n_par)
-                jtj[k], grad[k] = jtj_k, grad_k
-                dscale[k] = np.maximum(dscale[k], jtj_k[:, diag, diag])
-        del ne_new
+                jtj[kk], grad[kk] = jtj_k, grad_k
+                dscale[kk] = np.maximum(dscale[kk], _diag(np.ascontiguousarray(jtj_k), stride))
+        del ne_new, r_new
         if not going.all():  # finished voxels: write out, drop from the working arrays
-            done = ~going
-            p_out[pos[done]] = p[done]
-            cost_out[pos[done]] = cost[done]
-            pos, p, r, cost, lam, nu = pos[going], p[going], r[going], cost[going], lam[going], nu[going]
-            jtj, grad, dscale = jtj[going], grad[going], dscale[going]
+            pos, p, r, cost, lam, nu, jtj, grad, dscale, side = _finish(
+                going, pos, p_out, cost_out, p, r, cost, lam, nu, jtj, grad, dscale, side
+            )
     p_out[pos] = p  # the iteration limit reached by the rest
     cost_out[pos] = cost
     p_out[~valid] = np.nan
     cost_out[~valid] = np.nan
     rms = np.sqrt(2.0 * cost_out / n_res)
     return p_out, cost_out, rms, iters, status
+
+
+def _diag(a, stride):
+    """The diagonals of a C-contiguous stack ``(m, P, P)`` as a writable view ``(m, P)``."""
+    return a.reshape(a.shape[0], a.shape[1] * a.shape[2])[:, ::stride]
+
+
+def _finish(keep, pos, p_out, cost_out, p, r, cost, *rest):
+    """Write out the voxels that are done (``~keep``) and compact the working arrays."""
+    done = ~keep
+    p_out[pos[done]] = p[done]
+    cost_out[pos[done]] = cost[done]
+    return (pos[keep], p[keep], None if r is None else r[keep], cost[keep]) + tuple(
+        x[keep] for x in rest
+    )
 
 
 #: Diagonal weight that holds a parameter at a prescribed step (relative to its damped diagonal)
