@@ -35,7 +35,7 @@ from node.derive import (
     header_only,
     qc_note,
 )
-from node.memory import tune_allocator
+from node.memory import reserve_heap, tune_allocator
 from node.metrics import metrics_for
 from node.outbox import Outbox, OutboxWorker, RetryPolicy
 from node.receive import Receiver
@@ -570,6 +570,7 @@ class Node:
     def start(self) -> Node:
         self._stop.clear()
         tune_allocator()  # before the threads and the calibration (node.memory)
+        reserve_heap()  # the first series' page faults, paid now (once per process)
         self._delivery = ThreadPoolExecutor(max_workers=1, thread_name_prefix="cest-deliver")
         self._deferred_thread = threading.Thread(target=self._deferred_loop,
                                                  name="cest-deferred", daemon=True)
