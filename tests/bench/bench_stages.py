@@ -95,7 +95,7 @@ def stages_end_to_end(n_series: int, slices: int) -> None:
     for k in names:
         v = med(r["stages_ms"].get(k, 0.0) for r in recs)
         print(f"  {k:40s} {v:10.1f} {100 * v / total:6.1f}%")
-    print("  (prepare = normalise + b0; it and the stages after it fall after the last "
+    print("  (prepare = normalise + b0 + b0_band; it and the stages after it fall after the last "
           "instance)")
     print(f"\n  cost model honesty, median measured / predicted over {len(recs)} series")
     print(f"  {'method':12s} {'part':8s} {'predicted s':>12s} {'measured s':>11s} {'ratio':>7s}")
