@@ -156,6 +156,10 @@ def plan_methods(
     predicted: dict[str, float] = {}
     parts: dict[str, dict[str, float]] = {}
     kinds = tuple(DEFAULT_OUTPUTS[:max(n_outputs, 1)] if outputs is None else outputs)
+    # per method only the kinds each method makes: the per-series reports (structured_report,
+    # summary) are built once after every method, never planned (as node.calibrate learns
+    # them); counted per method, they had doubled each method's predicted build and send
+    kinds = tuple(k for k in kinds if k in DEFAULT_OUTPUTS)
     left = budget_s - elapsed_s
     for i, name in enumerate(methods):
         info = registry.get(name)

@@ -52,3 +52,17 @@ def test_a_primary_that_cannot_run_is_an_error():
     with pytest.raises(ValueError, match="primary method 'arex' cannot run"):
         plan_methods(["arex"], registry=METHODS, cost=cost, n_voxels=10, n_slices=1,
                      n_outputs=3, budget_s=1.0, elapsed_s=0.0, have_t1=False)
+
+
+def test_the_per_series_reports_are_not_charged_to_each_method():
+    # the structured report and the summary page are built once per series, after every
+    # method (node.service); a method's prediction covers what that method makes: PM, derived
+    # MR and SC (common practice: the plan charges each method its own work)
+    per_method = ("parametric_map", "derived_mr", "secondary_capture")
+    alone = _plan(10.0, outputs=per_method)
+    with_reports = _plan(10.0, outputs=(*per_method, "structured_report", "summary"))
+    assert with_reports.predicted_parts_s == alone.predicted_parts_s
+    # 20 slices: 1 PM + 20 MR + 20 SC objects at the model's send cost per object
+    cost = CostModel.from_registry(METHODS)
+    assert alone.predicted_parts_s["mtr_asym"]["send"] == pytest.approx(
+        41 * cost.send_s_per_object, rel=1e-4)
