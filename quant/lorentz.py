@@ -196,31 +196,44 @@ def _kernel(params, x, model, jac_t):
 class _Scratch:
     """Work buffers of one chunk of :func:`_residual_normal`, allocated once per call."""
 
-    def __init__(self, n, k, n_off, n_par, f32):
+    def __init__(self, n, k, n_off, f32):
         dt = np.float32 if f32 else np.float64
-        self.u = np.empty((n, k, n_off))
-        self.q = np.empty((n, k, n_off))
+        n_row = 3 * k + 1  # every parameter but the baseline, then the residual
+        self.coef = np.empty((n, k, 3))
+        self.coef[:, :, 0] = 1.0
+        self.den = np.empty((n * k, n_off))  # h^2 + u^2, then its reciprocal q
         self.res = np.empty((n, n_off))
-        self.q_lo = np.empty((n, k, n_off), dt)
-        self.u_lo = np.empty((n, k, n_off), dt)
-        self.t_lo = np.empty((n, k, n_off), dt)
-        # rows: d model / d p for every parameter but the baseline, then the residual
-        self.jt = np.empty((n, n_par, n_off), dt)
-        self.j = np.empty((n, n_off, n_par), dt)
-        self.gram = np.empty((n, n_par, n_par), dt)
+        self.cu = np.empty((n, k, 2), dt)
+        self.cu[:, :, 0] = 1.0
+        self.u = np.empty((n * k, n_off), dt)
+        self.s = np.empty((n, k, n_off), dt)
+        self.qs = np.empty((n, k, n_off), dt)
+        self.sd = np.empty((n, 1, k), dt)
+        self.jt = np.empty((n, n_row, n_off), dt)
+        self.j = np.empty((n, n_off, n_row), dt)
+        self.gram = np.empty((n, n_row, n_row), dt)
+        self.scale = np.ones((n, n_row), dt)
 
 
 def _residual_normal(params, x, data, weights=None, *, f32=GRAM_F32):
     """Residuals ``w (model - data)`` (n, N), ``J^T J`` (n, P, P) and ``J^T r`` (n, P).
 
-    One fused pass per chunk of :data:`_CHUNK` voxels (the same formulas as :func:`_kernel`).
-    The model and the residuals are float64; with ``f32`` the Jacobian is formed in float32
-    from the float64 line shapes, and its Gram products are float32 (the residuals, the cost
-    and everything the solver decides on stay float64). The Jacobian rows of every parameter
-    but the baseline, and the residual row, are written into one ``(chunk, P, N)`` buffer
-    (``P`` rows: a multiple of the SIMD width for 5 pools) whose Gram matrix, one batched matrix
-    product, holds ``J^T J`` and ``J^T r``; the baseline's column of the Jacobian is the
-    weights, so its entries are weighted row sums. The Jacobian never leaves the cache.
+    One fused pass per chunk of :data:`_CHUNK` voxels (the formulas of :func:`_kernel`, arranged
+    so that almost no elementwise pass over ``(pools, offsets)`` broadcasts a per-voxel value):
+
+    * the denominators ``h^2 + (x - d)^2 = x^2 - 2 d x + (d^2 + h^2)`` of all pools are one
+      matrix product of per-pool coefficients with ``[x^2, x, 1]`` (float64), ``q`` their
+      reciprocal, and the model ``c - sum A h^2 q`` one batched product (float64);
+    * the Jacobian columns of a pool are ``-h^2 q`` (amplitude), ``-2 A h^2 q^2 u / w`` ... as
+      per-voxel multiples of the rows ``q``, ``(q u)^2`` (width) and ``q (q u)`` (position,
+      ``u = x - d``); the water position's column, the sum of every pool's position column,
+      is one batched product. Those rows and the residual go into one ``(chunk, P, N)``
+      buffer whose Gram matrix, one batched matrix product, is scaled afterwards by the
+      multiples (a diagonal congruence on ``(P, P)`` per voxel instead of ``(P, N)``); the
+      baseline's column is the weights, so its entries are weighted row sums.
+
+    With ``f32`` the rows and their Gram product are float32 (the residuals, the cost and
+    everything the solver decides on stay float64). The rows never leave the cache.
     """
     params = np.asarray(params, dtype=np.float64)
     n, n_par = params.shape
@@ -231,17 +244,24 @@ def _residual_normal(params, x, data, weights=None, *, f32=GRAM_F32):
     dt = np.float32 if f32 else np.float64
     wv = np.ones(x.size, dt) if weights is None else np.asarray(weights, dt)
     w64 = None if weights is None else np.asarray(weights, np.float64)
+    xpow = np.stack([x * x, x, np.ones_like(x)])
+    xlin = np.stack([x, np.ones_like(x)]).astype(dt)
+    consts = (xpow, xlin, w64, wv, float(np.dot(wv.astype(np.float64), wv)))
     first = min(_CHUNK, n)
-    scratch = _Scratch(first, k, x.size, n_par, f32)
+    scratch = _Scratch(first, k, x.size, f32)
     for s in range(0, n, _CHUNK):
         e = min(s + _CHUNK, n)
-        sc = scratch if e - s == first else _Scratch(e - s, k, x.size, n_par, f32)
-        _normal_chunk(params[s:e], x, data[s:e], w64, wv, r[s:e], jtj[s:e], g[s:e], sc, n_par)
+        sc = scratch if e - s == first else _Scratch(e - s, k, x.size, f32)
+        _normal_chunk(params[s:e], data[s:e], r[s:e], jtj[s:e], g[s:e], sc, consts)
     return r, jtj, g
 
 
-def _normal_chunk(p, x, data, w64, wv, r, jtj, g, sc, n_par):
-    m = p.shape[0]
+def _normal_chunk(p, data, r, jtj, g, sc, consts):
+    xpow, xlin, w64, wv, w_sq = consts
+    m, n_par = p.shape
+    k = (n_par - 1) // 3
+    n_off = data.shape[1]
+    last = n_par - 1  # the residual's row; row i - 1 belongs to parameter i
     c = p[:, 0:1]
     a = p[:, 1::3]
     w = p[:, 2::3]
@@ -249,44 +269,53 @@ def _normal_chunk(p, x, data, w64, wv, r, jtj, g, sc, n_par):
     d[:, 1:] += d[:, :1]  # absolute positions
     h2 = 0.25 * w * w
     ah2 = a * h2
-    u, q, res, jt = sc.u, sc.q, sc.res, sc.jt
-    np.subtract(x[None, None, :], d[:, :, None], out=u)
-    np.multiply(u, u, out=q)
-    q += h2[:, :, None]
-    np.reciprocal(q, out=q)  # q = 1 / (h^2 + u^2)
+    coef = sc.coef
+    np.multiply(d, -2.0, out=coef[:, :, 1])
+    np.multiply(d, d, out=coef[:, :, 2])
+    coef[:, :, 2] += h2
+    np.matmul(coef.reshape(m * k, 3), xpow, out=sc.den)
+    q = np.reciprocal(sc.den, out=sc.den).reshape(m, k, n_off)  # q = 1 / (h^2 + u^2)
     # residual (float64): c - sum_i A_i h_i^2 q_i - data
+    res = sc.res
     np.matmul(ah2[:, None, :], q, out=res[:, None, :])
     np.subtract(c, res, out=res)
     res -= data
     if w64 is not None:
         res *= w64
     r[...] = res
-    # Jacobian rows (row = parameter - 1), in the working precision
-    ql, ul, tl = sc.q_lo, sc.u_lo, sc.t_lo
-    ql[...] = q
-    ul[...] = u
-    np.multiply(ql, (-h2)[:, :, None].astype(ql.dtype), out=jt[:, 0 : n_par - 1 : 3, :])  # dA
-    np.multiply(ql, ql, out=tl)
-    tl *= (-2.0 * ah2)[:, :, None].astype(tl.dtype)  # -2 L q
-    dd = jt[:, 2 : n_par - 1 : 3, :]
-    np.multiply(tl, ul, out=dd)  # d model / d(absolute position) = -2 L u q
-    ul *= (1.0 / w)[:, :, None].astype(ul.dtype)
-    np.multiply(dd, ul, out=jt[:, 1 : n_par - 1 : 3, :])  # d model / dw = -2 L u^2 q / w
-    for i in range(1, dd.shape[1]):  # the water position moves every pool
-        jt[:, 2, :] += dd[:, i, :]
-    if w64 is not None:
-        jt[:, : n_par - 1, :] *= wv
-    jt[:, n_par - 1, :] = res
+    # rows in the working precision
+    jt = sc.jt
+    qa = jt[:, 0:last:3, :]
+    qa[...] = q  # amplitudes: q
+    sc.cu[:, :, 1] = -d
+    np.matmul(sc.cu.reshape(m * k, 2), xlin, out=sc.u)  # u = x - d
+    s = np.multiply(qa, sc.u.reshape(m, k, n_off), out=sc.s)
+    np.multiply(s, s, out=jt[:, 1:last:3, :])  # widths: (q u)^2
+    qs = np.multiply(qa, s, out=sc.qs)  # positions: q (q u)
+    jt[:, 5:last:3, :] = qs[:, 1:, :]
+    # the water position moves every pool: sum_i (-2 A_i h_i^2) q_i (q_i u_i), scaled already
+    np.multiply(ah2, -2.0, out=sc.sd[:, 0, :], casting="same_kind")
+    np.matmul(sc.sd, qs, out=jt[:, 2:3, :])
+    # the multiples that make the rows Jacobian columns: -h^2, -2 A h^2 / w, -2 A h^2 (and
+    # the weights); the water position's row has its own already
+    scale = sc.scale
+    np.negative(h2, out=scale[:, 0:last:3])
+    np.divide(-2.0 * ah2, w, out=scale[:, 1:last:3])
+    np.multiply(ah2[:, 1:], -2.0, out=scale[:, 5:last:3])
+    if w64 is None:
+        jt[:, :last, :] *= scale[:, :last, None]
+    else:
+        jt[:, :last, :] *= scale[:, :last, None] * w64
+    jt[:, last, :] = res
     np.copyto(sc.j, jt.transpose(0, 2, 1))
     np.matmul(jt, sc.j, out=sc.gram)
-    # the baseline's Jacobian column is the weights: its products are weighted row sums
-    sums = (jt.reshape(m * n_par, -1) @ wv).reshape(m, n_par)
-    jtj[:, 0, 0] = float(np.dot(wv.astype(np.float64), wv))
-    jtj[:, 0, 1:] = sums[:, : n_par - 1]
-    jtj[:, 1:, 0] = sums[:, : n_par - 1]
-    jtj[:, 1:, 1:] = sc.gram[:, : n_par - 1, : n_par - 1]
-    g[:, 0] = sums[:, n_par - 1]
-    g[:, 1:] = sc.gram[:, : n_par - 1, n_par - 1]
+    sums = (jt.reshape(m * n_par, n_off) @ wv).reshape(m, n_par)
+    jtj[:, 1:, 1:] = sc.gram[:, :last, :last]
+    g[:, 1:] = sc.gram[:, :last, last]
+    jtj[:, 0, 0] = w_sq
+    jtj[:, 0, 1:] = sums[:, :last]
+    jtj[:, 1:, 0] = sums[:, :last]
+    g[:, 0] = sums[:, last]
 
 
 def z_model(offsets_ppm, params, pools=POOLS_5):
