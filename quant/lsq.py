@@ -14,8 +14,9 @@ diagonal of ``J^T J`` as in MINPACK's ``lmder``, Moré 1978, from memory):
 
 * step: ``(J^T J + lambda * D) delta = -J^T r`` with ``D = diag(max_k diag(J_k^T J_k))``;
 * gain ratio ``rho = (F(p) - F(p + delta)) / (L(0) - L(delta))`` with the linear model ``L``;
-  accepted when ``rho > 0``; then ``lambda *= max(1/3, 1 - (2 rho - 1)^3)``, ``nu = 2``; else
-  ``lambda *= nu``, ``nu *= 2``.
+  accepted when ``rho > 0``; then ``lambda *= max(1/3, 1 - (2 rho - 1)^3)`` (or, with
+  ``damping='marquardt'``, ``/3`` where ``rho > 3/4`` and ``*2`` where ``rho < 1/4``),
+  ``nu = 2``; else ``lambda *= nu``, ``nu *= 2``.
 
 Bounds (box constraints) are handled by **projection with an active set**: a parameter sitting
 on a bound whose gradient points out of the box is frozen for that iteration (its step is 0:
@@ -154,6 +155,7 @@ def least_squares_batch(
     lambda0: float = 1e-3,
     block_size: int = 1024,
     bound_approach: float = 1.0,
+    damping: str = "nielsen",
 ) -> LsqResult:
     """Fit ``V`` independent least-squares problems at once by Levenberg-Marquardt.
 
@@ -190,6 +192,12 @@ def least_squares_batch(
         parameters from being pushed onto a bound by an early, long Gauss-Newton step (the
         step-back of trust-region-reflective methods, Branch, Coleman & Li, SIAM J Sci Comput
         1999, 21:1, serves the same end; from memory).
+    damping : {'nielsen', 'marquardt'}
+        Update of ``lambda`` after an accepted step with gain ratio ``rho``: ``'nielsen'``
+        multiplies it by ``max(1/3, 1 - (2 rho - 1)^3)`` (Madsen, Nielsen & Tingleff 2004,
+        Alg. 3.16); ``'marquardt'`` divides it by 3 where ``rho > 3/4``, doubles it where
+        ``rho < 1/4`` and keeps it between (the same text, section 3.2, after Marquardt 1963;
+        from memory). Either way a rejected step multiplies it by ``nu`` (2, 4, 8, ...).
 
     Returns
     -------
@@ -214,6 +222,8 @@ def least_squares_batch(
         raise ValueError(f"block_size must be at least 1, got {block_size}")
     if not 0.0 < bound_approach <= 1.0:
         raise ValueError(f"bound_approach must lie in (0, 1], got {bound_approach}")
+    if damping not in ("nielsen", "marquardt"):
+        raise ValueError(f"damping must be 'nielsen' or 'marquardt', got {damping!r}")
     lo, hi = _check_bounds(p0, lower, upper)
     n_vox, n_par = p0.shape
     params = np.full((n_vox, n_par), np.nan)
@@ -224,7 +234,8 @@ def least_squares_batch(
     for start in range(0, n_vox, block_size):  # blocks of voxels, to bound memory
         idx = np.arange(start, min(start + block_size, n_vox))
         out = _solve_block(
-            fun, jac, p0[idx], idx, lo, hi, max_iter, ftol, xtol, gtol, lambda0, bound_approach
+            fun, jac, p0[idx], idx, lo, hi, max_iter, ftol, xtol, gtol, lambda0, bound_approach,
+            damping == "marquardt",
         )
         params[idx], cost[idx], rms[idx], iters[idx], status[idx] = out
     finite = np.isfinite(params)
@@ -282,7 +293,9 @@ def _normal_equations(j, r):
     return jt @ j, (jt @ r[:, :, None])[:, :, 0]
 
 
-def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda0, approach):
+def _solve_block(
+    fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda0, approach, marquardt
+):
     """One block of voxels. The working arrays hold the active voxels only: a voxel that
     finishes is written out and dropped (compaction), so late iterations cost what the few
     remaining voxels cost, without fancy indexing of the whole block at every step."""
@@ -356,35 +369,30 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
             step = np.where(fixed, held, step)
         else:
             step = _solve(a, -g_free)
+        del a
+        # a predicted hold is kept while the model still pulls the parameter towards its bound
+        # (the sign of its Lagrange multiplier, the gradient of the damped model there);
+        # released ones are solved for again, in the first pass below
+        release = None
         if predicted.any():
-            # a predicted hold is kept while the model still pulls the parameter towards its
-            # bound (the sign of its Lagrange multiplier, the gradient of the undamped-by-hold
-            # model there); released ones are solved for again, with the others still held
             mu = grad + np.einsum("vpq,vq->vp", jtj, step) + lam[:, None] * d * step
             release = predicted & (side * mu >= 0)
-            loc = np.flatnonzero(release.any(axis=1))
-            if loc.size:
-                fixed[loc] &= ~release[loc]
-                a_c = jtj[loc]
-                adc = _diag(a_c, stride)
-                adc += lam[loc, None] * d[loc]
-                fz = fixed[loc]
-                adc += np.where(fz, hold[loc], 0.0)
-                hz = np.where(fz, held[loc], 0.0)
-                step[loc] = np.where(fz, hz, _solve(a_c, np.where(fz, adc * hz, -g_free[loc])))
-                a[loc] = a_c
+            if not release.any():
+                release = None
         # a step that crosses a bound: hold those parameters (on the bound, or ``approach`` of
         # the way there) and re-solve for the others (a few passes), instead of clipping a
         # correlated step
-        sub, a_sub = None, a  # a later pass only revisits the voxels re-solved
+        sub = None  # a later pass only revisits the voxels re-solved
         for _pass in range(3):
             if sub is None:
                 trial = p + step
                 crossing = ((trial < lo) | (trial > hi)) & ~fixed
+                redo = crossing if release is None else crossing | release
             else:
                 trial = p[sub] + step[sub]
                 crossing = ((trial < lo) | (trial > hi)) & ~fixed[sub]
-            loc = np.flatnonzero(crossing.any(axis=1))
+                redo = crossing
+            loc = np.flatnonzero(redo.any(axis=1))
             if loc.size == 0:
                 break
             cz = loc if sub is None else sub[loc]
@@ -393,17 +401,18 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
             if approach < 1.0:
                 to_bound = np.where(np.abs(to_bound) > near_tol, approach * to_bound, to_bound)
             fz_old = fixed[cz]
+            if sub is None and release is not None:
+                fz_old &= ~release[cz]
             held_c = np.where(fz_old, step[cz], 0.0) + np.where(cc, to_bound, 0.0)
             fz = fz_old | cc
             fixed[cz] = fz
-            a_c = a_sub[loc]
+            a_c = jtj[cz]
             adc = _diag(a_c, stride)
-            # held ones already carry ``hold`` on the diagonal
-            adc += np.where(cc, hold[cz], 0.0)
+            adc += lam[cz, None] * d[cz]
+            adc += np.where(fz, hold[cz], 0.0)
             rhs = np.where(fz, adc * held_c, -g_free[cz])
             step[cz] = np.where(fz, held_c, _solve(a_c, rhs))
-            sub, a_sub = cz, a_c
-        del a, a_sub
+            sub = cz
         # what still crosses a bound is projected (``approach`` of the way to the bound)
         trial = p + step
         p_new = np.clip(trial, lo, hi)
@@ -427,8 +436,12 @@ def _solve_block(fun, jac, p0, index, lo, hi, max_iter, ftol, xtol, gtol, lambda
         accept = (rho > 0) & (actual > 0)
         iters[pos] += 1
 
-        # damping update (Madsen, Nielsen & Tingleff 2004, Alg. 3.16)
-        lam = np.where(accept, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * rho - 1.0) ** 3), lam * nu)
+        # damping update; a rejected step: lambda *= nu, nu *= 2
+        if marquardt:  # three zones of the gain ratio (Madsen et al. 2004, section 3.2)
+            zone = np.where(rho > 0.75, 1.0 / 3.0, np.where(rho < 0.25, 2.0, 1.0))
+            lam = np.where(accept, lam * zone, lam * nu)
+        else:  # Madsen et al. 2004, Alg. 3.16
+            lam = np.where(accept, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * rho - 1.0) ** 3), lam * nu)
         nu = np.where(accept, 2.0, 2.0 * nu)
 
         pnorm = np.linalg.norm(p, axis=1)

@@ -67,10 +67,17 @@ def _normal(p, y):
 
 
 @pytest.mark.parametrize(
-    "mode, approach",
-    [("analytic", 1.0), ("finite", 1.0), ("with_fun", 1.0), ("with_fun", 0.5), ("normal", 0.5)],
+    "mode, approach, damping",
+    [
+        ("analytic", 1.0, "nielsen"),
+        ("finite", 1.0, "nielsen"),
+        ("with_fun", 1.0, "nielsen"),
+        ("with_fun", 0.5, "nielsen"),
+        ("normal", 0.5, "nielsen"),
+        ("normal", 0.5, "marquardt"),
+    ],
 )
-def test_same_optimum_as_scipy_least_squares(problem, mode, approach):
+def test_same_optimum_as_scipy_least_squares(problem, mode, approach, damping):
     y, p0 = problem
     if mode == "with_fun":  # jac=True: fun returns residuals and Jacobian together
         fun, jac = (lambda p, i: (lorentz_model(p) - y[i], lorentz_jac(p))), True
@@ -79,7 +86,9 @@ def test_same_optimum_as_scipy_least_squares(problem, mode, approach):
     else:
         fun = lambda p, i: lorentz_model(p) - y[i]  # noqa: E731
         jac = (lambda p, i: lorentz_jac(p)) if mode == "analytic" else None
-    res = least_squares_batch(fun, p0, jac=jac, lower=LO, upper=HI, bound_approach=approach)
+    res = least_squares_batch(
+        fun, p0, jac=jac, lower=LO, upper=HI, bound_approach=approach, damping=damping
+    )
     assert res.converged.all()
     sample = range(0, 300, 15)
     for i in sample:
@@ -162,6 +171,8 @@ def test_bad_arguments_name_the_problem():
         least_squares_batch(f, np.ones((2, 4)), jac=lambda p, i: np.zeros((2, 3)))
     with pytest.raises(ValueError, match=r"bound_approach must lie in \(0, 1\]"):
         least_squares_batch(f, np.ones((2, 4)), bound_approach=0.0)
+    with pytest.raises(ValueError, match="damping must be 'nielsen' or 'marquardt'"):
+        least_squares_batch(f, np.ones((2, 4)), damping="fast")
     with pytest.raises(ValueError, match=r"with jac=True, fun must return a tuple"):
         least_squares_batch(f, np.ones((2, 4)), jac=True)
     with pytest.raises(ValueError, match=r"with jac='normal', fun must return a tuple"):
