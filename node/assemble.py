@@ -46,6 +46,7 @@ from pydicom.tag import Tag
 
 from node.companion import CompanionFrame, CompanionSeries, CompanionStore, attach, to_physical
 from node.config import CompanionRule, NodeConfig, OffsetRule, Protocol
+from node.fastpath import tag_key
 from node.types import AssembledSeries, series_key
 
 __all__ = [
@@ -71,9 +72,9 @@ OFFSET_TOLERANCE_PPM = 1e-3
 SLICE_TOLERANCE_MM = 0.01
 """Frames whose positions along the slice normal differ by less than this are one slice."""
 _ORIENTATION_TOLERANCE = 1e-4
-_PIXEL_DATA = Tag(0x7FE0, 0x0010)
-_PER_FRAME = Tag(0x5200, 0x9230)  # PerFrameFunctionalGroupsSequence
-_SHARED = Tag(0x5200, 0x9229)  # SharedFunctionalGroupsSequence
+_PIXEL_DATA = tag_key(0x7FE00010)
+_PER_FRAME = tag_key(0x52009230)  # PerFrameFunctionalGroupsSequence
+_SHARED = tag_key(0x52009229)  # SharedFunctionalGroupsSequence
 
 
 class AssemblyError(ValueError):
@@ -359,7 +360,7 @@ def _raw_numbers(ds: Dataset, tag: int) -> list[float] | None:
     DSfloat per value); None whenever the element is absent, already converted, implicit VR,
     or any value is not a plain number: the caller then takes pydicom's path.
     """
-    elem = ds._dict.get(tag)  # type: ignore[call-overload]
+    elem = ds._dict.get(tag_key(tag))
     if type(elem) is not RawDataElement or elem.VR not in ("DS", "IS") or not elem.value:
         return None
     try:
@@ -371,7 +372,7 @@ def _raw_numbers(ds: Dataset, tag: int) -> list[float] | None:
 
 def _raw_us(ds: Dataset, tag: int) -> int | None:
     """A not-yet-converted explicit-VR US element of one value, read from its two bytes."""
-    elem = ds._dict.get(tag)  # type: ignore[call-overload]
+    elem = ds._dict.get(tag_key(tag))
     if (type(elem) is not RawDataElement or elem.VR != "US" or elem.length != 2
             or not elem.is_little_endian):
         return None
@@ -383,7 +384,7 @@ def _raw_text(ds: Dataset, tag: int) -> str | None:
     its bytes, as pydicom gives it: 7-bit text without ESC or backslash (so every DICOM
     character set reads it the same), trailing spaces and NULs stripped (PS3.5 6.2). None
     for anything else (the caller then takes pydicom's path)."""
-    elem = ds._dict.get(tag)  # type: ignore[call-overload]
+    elem = ds._dict.get(tag_key(tag))
     if type(elem) is not RawDataElement or elem.VR not in ("LO", "SH", "CS"):
         return None
     raw = elem.value
@@ -403,7 +404,7 @@ def header_uid(ds: Dataset, tag: int, keyword: str) -> str:
     conversion costs about 19 us per UID (value hooks, the validation regex), four UIDs per
     instance on the receive path; this about 1 us (measured with timeit here).
     """
-    elem = ds._dict.get(tag)  # type: ignore[call-overload]
+    elem = ds._dict.get(tag_key(tag))
     if type(elem) is RawDataElement and elem.VR in ("UI", None):
         raw = elem.value
         if isinstance(raw, bytes) and raw and raw.isascii() and b"\\" not in raw:
@@ -429,19 +430,10 @@ def _raw_int(ds: Dataset, tag: int) -> int | None:
 
 def _us_value(ds: Dataset, tag: int) -> int | None:
     """A US element of one value, raw or already converted by pydicom (None otherwise)."""
-    elem = ds._dict.get(tag)  # type: ignore[call-overload]
+    elem = ds._dict.get(tag_key(tag))
     if type(elem) is DataElement and type(elem.value) is int:
         return elem.value
     return _raw_us(ds, tag)
-
-
-def _converted(ds: Dataset, tag: int) -> Any:
-    """The value of an element pydicom has already converted (``_MISSING`` otherwise)."""
-    elem = ds._dict.get(tag)  # type: ignore[call-overload]
-    return elem.value if type(elem) is DataElement else _MISSING
-
-
-_MISSING = object()
 
 
 def _match_text(ds: Dataset, attribute: str) -> str | None:
@@ -547,7 +539,7 @@ def _decode_pixels(ds: Dataset, *, modality: bool = True, rows: int | None = Non
     """
     rows = rows or _raw_us(ds, 0x00280010) or int(ds.Rows)
     cols = cols or _raw_us(ds, 0x00280011) or int(ds.Columns)
-    n_frames = int(ds.get("NumberOfFrames", 1) or 1) if 0x00280008 in ds._dict else 1
+    n_frames = int(ds.get("NumberOfFrames", 1) or 1) if tag_key(0x00280008) in ds._dict else 1
     arr: np.ndarray | None = None
     raw = ds._dict.get(_PIXEL_DATA)
     if (_plain_syntax(ds)
@@ -817,16 +809,13 @@ class Assembler:
         proto = found[0] if found is not None else self.match(ds)
         if proto is None:
             return None
-        # values pydicom has already converted (the receiver reads the UIDs and the matrix
-        # size first) are taken as they are; anything else through pydicom
-        study, series, sop = (_converted(ds, 0x0020000D), _converted(ds, 0x0020000E),
-                              _converted(ds, 0x00080018))
-        if study is _MISSING or series is _MISSING or sop is _MISSING:
-            try:
-                study, series, sop = (ds.StudyInstanceUID, ds.SeriesInstanceUID,
-                                      ds.SOPInstanceUID)
-            except AttributeError as exc:
-                raise AssemblyError(f"{exc.name or 'a UID'}: missing") from None
+        # the UIDs from their raw bytes where plain (header_uid), else through pydicom
+        try:
+            study = header_uid(ds, 0x0020000D, "StudyInstanceUID")
+            series = header_uid(ds, 0x0020000E, "SeriesInstanceUID")
+            sop = header_uid(ds, 0x00080018, "SOPInstanceUID")
+        except AttributeError as exc:
+            raise AssemblyError(f"{exc.name or 'a UID'}: missing") from None
         if _PIXEL_DATA not in ds._dict:
             raise AssemblyError("PixelData: missing")
         fast_rows, fast_cols = _us_value(ds, 0x00280010), _us_value(ds, 0x00280011)
@@ -880,7 +869,7 @@ class Assembler:
                                 frame_number=i + 1 if multi else None, header=frame_header))
         fast_iia = _raw_int(ds, 0x00201002)
         iia = (fast_iia if fast_iia is not None
-               else ds.get("ImagesInAcquisition") if 0x00201002 in ds._dict else None)
+               else ds.get("ImagesInAcquisition") if tag_key(0x00201002) in ds._dict else None)
         try:
             images = int(iia) if iia not in (None, "") else None
         except (TypeError, ValueError):

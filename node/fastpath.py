@@ -75,6 +75,7 @@ __all__ = [
     "scan_dataset",
     "store_direct",
     "supported",
+    "tag_key",
 ]
 
 log = logging.getLogger("cest_node.fastpath")
@@ -233,6 +234,22 @@ _EMPTY: dict[tuple[str, bool], Any] = {}  # empty raw value per (VR, pydicom's N
 _RAW_NEW = tuple.__new__  # RawDataElement(...) without the namedtuple's Python-level __new__
 _RAW_DEFAULTS = (RawDataElement._field_defaults["is_raw"],
                  RawDataElement._field_defaults["is_buffered"])
+
+
+def tag_key(number: int) -> BaseTag:
+    """The BaseTag this module's scanner uses as the key of element ``number``.
+
+    A dict lookup of a Dataset's elements with a plain int finds the entry by hash, then
+    compares keys with ``BaseTag.__eq__``, a Python-level method (about 0.5 us a call); with
+    the key object itself the comparison is an identity check. Readers of scanned data sets
+    (:mod:`node.assemble`) look their tags up with these objects.
+    """
+    tag = _TAGS.get(number)
+    if tag is None:
+        tag = BaseTag(number)
+        if len(_TAGS) < 4096:
+            _TAGS[number] = tag
+    return tag
 
 
 def _empty_raw(vr: str) -> Any:
