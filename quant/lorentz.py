@@ -232,16 +232,17 @@ def _residual_normal(params, x, data, weights=None, *, f32=GRAM_F32):
       multiples (a diagonal congruence on ``(P, P)`` per voxel instead of ``(P, N)``); the
       baseline's column is the weights, so its entries are weighted row sums.
 
-    With ``f32`` the rows and their Gram product are float32 (the residuals, the cost and
-    everything the solver decides on stay float64). The rows never leave the cache.
+    With ``f32`` the rows and their Gram product are float32, and so is the ``J^T J`` returned
+    (the residuals, ``J^T r``, the cost and everything the solver decides on stay float64).
+    The rows never leave the cache.
     """
     params = np.asarray(params, dtype=np.float64)
     n, n_par = params.shape
     k = (n_par - 1) // 3
-    r = np.empty((n, x.size))
-    jtj = np.empty((n, n_par, n_par))
-    g = np.empty((n, n_par))
     dt = np.float32 if f32 else np.float64
+    r = np.empty((n, x.size))
+    jtj = np.empty((n, n_par, n_par), dt)  # in the precision of its products
+    g = np.empty((n, n_par))
     wv = np.ones(x.size, dt) if weights is None else np.asarray(weights, dt)
     w64 = None if weights is None else np.asarray(weights, np.float64)
     xpow = np.stack([x * x, x, np.ones_like(x)])
@@ -296,22 +297,24 @@ def _normal_chunk(p, data, r, jtj, g, sc, consts):
     # the water position moves every pool: sum_i (-2 A_i h_i^2) q_i (q_i u_i), scaled already
     np.multiply(ah2, -2.0, out=sc.sd[:, 0, :], casting="same_kind")
     np.matmul(sc.sd, qs, out=jt[:, 2:3, :])
-    # the multiples that make the rows Jacobian columns: -h^2, -2 A h^2 / w, -2 A h^2 (and
-    # the weights); the water position's row has its own already
+    # the multiples that make the rows Jacobian columns: -h^2, -2 A h^2 / w, -2 A h^2; the
+    # water position's row has its own already
     scale = sc.scale
     np.negative(h2, out=scale[:, 0:last:3])
     np.divide(-2.0 * ah2, w, out=scale[:, 1:last:3])
     np.multiply(ah2[:, 1:], -2.0, out=scale[:, 5:last:3])
-    if w64 is None:
-        jt[:, :last, :] *= scale[:, :last, None]
-    else:
-        jt[:, :last, :] *= scale[:, :last, None] * w64
+    if w64 is not None:
+        jt[:, :last, :] *= wv
     jt[:, last, :] = res
     np.copyto(sc.j, jt.transpose(0, 2, 1))
-    np.matmul(jt, sc.j, out=sc.gram)
+    gram = np.matmul(jt, sc.j, out=sc.gram)
     sums = (jt.reshape(m * n_par, n_off) @ wv).reshape(m, n_par)
-    jtj[:, 1:, 1:] = sc.gram[:, :last, :last]
-    g[:, 1:] = sc.gram[:, :last, last]
+    # the rows times their multiples: a congruence of the Gram matrix (s = 1 for the residual)
+    gram *= scale[:, :, None]
+    gram *= scale[:, None, :]
+    sums *= scale
+    jtj[:, 1:, 1:] = gram[:, :last, :last]
+    g[:, 1:] = gram[:, :last, last]
     jtj[:, 0, 0] = w_sq
     jtj[:, 0, 1:] = sums[:, :last]
     jtj[:, 1:, 0] = sums[:, :last]
@@ -505,9 +508,11 @@ def _smooth_spectra(zf, lead, size):
 #: tests/bench/bench_fits.py) while a third fewer steps are needed.
 FIT_TOL = 1e-6
 
-#: Voxels per solver block (the solver's per-iteration overhead is paid per block; the model
-#: kernel works in cache-sized chunks of its own).
-BLOCK = 4096
+#: Voxels per solver block (the solver's per-iteration overhead is paid per block, its
+#: ``(block, P, P)`` arrays should stay near the cache; the model kernel works in cache-sized
+#: chunks of its own). 2048 was 2-8% faster than 4096 on the 64 x 64 and 128 x 128 spectra of
+#: tests/bench/bench_fits.py, 1024 slower.
+BLOCK = 2048
 
 #: Fraction of the way to a bound that a bound-crossing step moves a parameter (see
 #: :func:`quant.lsq.least_squares_batch`); 1 sends it onto the bound. Chosen from the residuals

@@ -173,7 +173,8 @@ def least_squares_batch(
         whose Jacobian shares subexpressions with its value is evaluated once per step; the
         Jacobian of a rejected trial point is discarded. ``'normal'``: ``fun`` returns
         ``(residuals (n, M), J^T J (n, P, P), J^T r (n, P))``, so a model can form the normal
-        equations chunk by chunk while its Jacobian is in the cache (the solver needs no more).
+        equations chunk by chunk while its Jacobian is in the cache (the solver needs no more);
+        ``J^T J`` may be float32 (its products formed in float32), the solver keeps float64.
         Forward finite differences (:func:`finite_difference_jacobian`) when omitted.
     lower, upper : array_like (P,) or float, optional
         Box bounds (``-inf`` / ``inf`` by default).
@@ -272,7 +273,11 @@ def _evaluate(fun, jac, p, index, lo, hi, n_res, n_par, eager):
         _check_jac(extra[0], p.shape[0], r.shape[1], n_par)
         extra = _normal_equations(np.asarray(extra[0], np.float64), r)
     elif eager == "normal":
-        jtj, g = (np.asarray(a, np.float64) for a in extra)
+        # J^T J may come in float32 (the solver copies it into float64 where it keeps it)
+        jtj = np.asarray(extra[0])
+        if jtj.dtype not in (np.float32, np.float64):
+            jtj = jtj.astype(np.float64)
+        g = np.asarray(extra[1], np.float64)
         if jtj.shape != (p.shape[0], n_par, n_par) or g.shape != (p.shape[0], n_par):
             raise ValueError(
                 f"with jac='normal', fun must return jtj shaped {(p.shape[0], n_par, n_par)} and "
@@ -322,7 +327,7 @@ def _solve_block(
     lam = np.full(pos.size, lambda0)
     nu = np.full(pos.size, 2.0)
     if eager:
-        jtj, grad = np.ascontiguousarray(ne0[0][pos]), ne0[1][pos]
+        jtj, grad = ne0[0][pos].astype(np.float64), ne0[1][pos]
     else:
         jtj, grad = _jacobian_normal(fun, jac, p, index[pos], r, lo, hi, n_res, n_par)
         jtj = np.ascontiguousarray(jtj)
