@@ -890,6 +890,22 @@ class Assembler:
             img = img + np.float32(float(icpt))
         return img
 
+    def check_fits(self, prep: Prepared) -> None:
+        """Raise the :class:`AssemblyError` that :meth:`place` would raise for the matrix
+        size or orientation of an instance, without placing it (the receiver checks before
+        answering and places after; see :meth:`node.receive.Receiver._store`)."""
+        if prep.companion is not None:
+            return
+        with self._cond:
+            s = self._series.get(prep.key)
+            if s is None:
+                return
+            if (prep.rows, prep.cols) != (s.rows, s.cols):
+                raise AssemblyError(f"Rows/Columns: {prep.rows} x {prep.cols} differs from the "
+                                    f"series' {s.rows} x {s.cols}")
+            if not _same_orientation(prep.orientation, s.orientation):
+                raise AssemblyError("ImageOrientationPatient: differs from the series'")
+
     def place(self, prep: Prepared) -> Placed:
         """Put a prepared instance's frames into its series (the only stateful step).
 

@@ -402,8 +402,10 @@ class StoreRequest:
     dataset: bytes
 
 
-StoreFunction = Callable[[Any, StoreRequest], "tuple[int, str]"]
-"""``f(association, request) -> (status, error_comment)``; an exception answers 0xC211."""
+StoreFunction = Callable[[Any, StoreRequest], "tuple[int, str] | tuple[int, str, Callable[[], None]]"]
+"""``f(association, request) -> (status, error_comment[, after])``; an exception answers
+0xC211. ``after``, when given, runs once the response is on its way (work that must not delay
+the answer: the sender prepares its next request meanwhile); its exceptions are logged."""
 
 
 def supported() -> tuple[bool, str]:
@@ -679,11 +681,25 @@ def _classes() -> tuple[type, type, type, type]:
 
         def _cest_serve(self, req: StoreRequest) -> None:
             st: _State = self._cest_fast
+            after = None
             try:
-                status, comment = st.store(self, req)
+                result = st.store(self, req)
+                status, comment = result[0], result[1]
+                if len(result) > 2:
+                    after = result[2]
             except Exception:
                 log.exception("C-STORE handler failed; answering 0xC211")
                 status, comment = 0xC211, ""
+            try:
+                self._cest_respond(req, status, comment)
+            finally:
+                if after is not None:
+                    try:
+                        after()
+                    except Exception:
+                        log.exception("C-STORE: the work after the response failed")
+
+        def _cest_respond(self, req: StoreRequest, status: int, comment: str) -> None:
             if not self.is_established:
                 return
             cmd = encode_store_response(req.message_id, req.sop_class_uid,

@@ -430,25 +430,32 @@ class Receiver:
         self._observe(code)
         return _status(code, comment) if comment else code
 
-    def _fast_store(self, assoc: Any, req: fastpath.StoreRequest) -> tuple[int, str]:
-        """The fast path's C-STORE (see :mod:`node.fastpath`): the same :meth:`_store`."""
+    def _fast_store(self, assoc: Any, req: fastpath.StoreRequest
+                    ) -> tuple[int, str] | tuple[int, str, Callable[[], None]]:
+        """The fast path's C-STORE (see :mod:`node.fastpath`): the same :meth:`_store`, with
+        the frames placed after the response is sent."""
         self.fast_stores += 1
+        after: list[Callable[[], None]] = []
         code, comment = self._store(req.dataset, req.transfer_syntax_uid, req.sop_class_uid,
-                                    id(assoc))
+                                    id(assoc), after=after)
         self._observe(code)
-        return code, comment
+        return (code, comment, after[0]) if after else (code, comment)
 
     @staticmethod
     def _refuse_unparsable(broken: str) -> tuple[int, str]:
         log.warning("C-STORE: data set refused, %s", broken)
         return STATUS_CANNOT_UNDERSTAND, f"truncated or malformed: {broken}"
 
-    def _store(self, data: bytes, ts: str, requested_class: str, assoc_id: int
-               ) -> tuple[int, str]:
+    def _store(self, data: bytes, ts: str, requested_class: str, assoc_id: int, *,
+               after: list[Callable[[], None]] | None = None) -> tuple[int, str]:
         """One C-STORE data set (bytes as sent) -> (PS3.7 status, ErrorComment or "").
 
         Success is answered only once the instance is on disk in the spool (fsync'd when
-        configured), never before.
+        configured), never before. With ``after`` (a list), the placing of the frames into
+        their series is appended to it instead of done here, for the caller to run once the
+        response is sent: everything that can refuse the instance (its header, its matrix
+        and orientation against its series, the spool) is decided before. About a tenth of
+        the work of an instance then overlaps the sender's next request.
         """
         implicit = ts == str(ImplicitVRLittleEndian)
         try:
@@ -497,6 +504,11 @@ class Receiver:
         if prep is None:
             log.info("series %s: matches no protocol; acknowledged and ignored", key)
             return STATUS_SUCCESS, ""
+        try:
+            self.assembler.check_fits(prep)
+        except AssemblyError as exc:
+            self._flag(key, f"instance refused: {exc}")
+            return STATUS_SOP_MISMATCH, str(exc)
         stored = (self.spool.path_for(key, sop_uid) if self.spool.contains(key, sop_uid)
                   else None)
         if stored is not None and stored.exists():
@@ -514,16 +526,33 @@ class Receiver:
             except SpoolError as exc:
                 log.error("%s", exc)
                 return STATUS_OUT_OF_RESOURCES, "cannot write the instance to the spool"
+        if after is not None:
+            after.append(lambda: self._place(prep, key, sop_uid, assoc_id, answered=True))
+            return STATUS_SUCCESS, ""
+        try:
+            self._place(prep, key, sop_uid, assoc_id, answered=False)
+        except AssemblyError as exc:
+            return STATUS_SOP_MISMATCH, str(exc)
+        return STATUS_SUCCESS, ""
+
+    def _place(self, prep: Any, key: str, sop_uid: str, assoc_id: int, *,
+               answered: bool) -> None:
+        """Place a stored instance's frames. A refusal (another association made the series
+        with another matrix between the check and now) is re-raised before the answer; after a
+        success was answered the instance stays in the spool and the series is flagged."""
         try:
             placed = self.assembler.place(prep)
         except AssemblyError as exc:
-            self.spool.discard(key, sop_uid)
-            self._flag(key, f"instance refused: {exc}")
-            return STATUS_SOP_MISMATCH, str(exc)
+            if not answered:
+                self.spool.discard(key, sop_uid)
+                self._flag(key, f"instance refused: {exc}")
+                raise
+            log.error("series %s: instance acknowledged but not placed: %s", key, exc)
+            self._flag(key, f"instance acknowledged but not placed (kept in the spool): {exc}")
+            return
         if placed is Placed.ADDED:
             with self._assoc_lock:
                 self._assoc_series.setdefault(assoc_id, set()).add(key)
-        return STATUS_SUCCESS, ""
 
     def _on_assoc_end(self, event: Any) -> None:
         with self._assoc_lock:
