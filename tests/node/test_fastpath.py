@@ -86,17 +86,22 @@ def test_store_command_parse_matches_the_library_request():
 
 
 def test_part10_prefix_is_what_pydicom_writes():
-    # reference: pydicom's encoding of pynetdicom's create_file_meta (PS3.10 7.1)
+    # reference: pydicom's encoding of pynetdicom's create_file_meta (PS3.10 7.1); several
+    # instance UIDs in turn, of the same and of other lengths (odd ones padded with a NUL,
+    # PS3.5 9.1), so that the prefixes built from the kept template are checked too
     for ts in (ExplicitVRLittleEndian, ImplicitVRLittleEndian):
-        ours = fastpath.encode_part10_prefix(
-            UID_CLASS, UID_INST, str(ts), implementation_class_uid=PYNETDICOM_IMPLEMENTATION_UID,
-            implementation_version=PYNETDICOM_IMPLEMENTATION_VERSION)
-        meta = create_file_meta(sop_class_uid=UID_CLASS, sop_instance_uid=UID_INST,
-                                transfer_syntax=ts)
-        assert ours == b"\x00" * 128 + b"DICM" + encode_file_meta(meta)
-        back = fastpath.file_meta_from_prefix(ours)
-        assert isinstance(back, FileMetaDataset)
-        assert back.TransferSyntaxUID == ts and back.MediaStorageSOPInstanceUID == UID_INST
+        for inst in (UID_INST, UID_INST[:-1] + "9", UID_INST + "1", UID_INST + "12", UID_INST):
+            ours, ours_meta = fastpath.part10_prefix_and_meta(
+                UID_CLASS, inst, str(ts), implementation_class_uid=PYNETDICOM_IMPLEMENTATION_UID,
+                implementation_version=PYNETDICOM_IMPLEMENTATION_VERSION)
+            meta = create_file_meta(sop_class_uid=UID_CLASS, sop_instance_uid=inst,
+                                    transfer_syntax=ts)
+            assert ours == b"\x00" * 128 + b"DICM" + encode_file_meta(meta)
+            back = fastpath.file_meta_from_prefix(ours)
+            assert isinstance(back, FileMetaDataset)
+            assert _raw_view(ours_meta) == _raw_view(back)
+            assert back.TransferSyntaxUID == ts and back.MediaStorageSOPInstanceUID == inst
+            assert ours_meta.MediaStorageSOPInstanceUID == inst
 
 
 def _raw_view(ds: Dataset) -> list[tuple]:
