@@ -327,12 +327,14 @@ def _solve_block(
     lam = np.full(pos.size, lambda0)
     nu = np.full(pos.size, 2.0)
     if eager:
-        jtj, grad = ne0[0][pos].astype(np.float64), ne0[1][pos]
+        # kept in the precision it comes in (float32 halves the memory traffic of the
+        # (n, P, P) passes); the systems are solved in float64
+        jtj, grad = np.ascontiguousarray(ne0[0][pos]), ne0[1][pos]
     else:
         jtj, grad = _jacobian_normal(fun, jac, p, index[pos], r, lo, hi, n_res, n_par)
         jtj = np.ascontiguousarray(jtj)
     del ne0
-    dscale = _diag(jtj, stride).copy()
+    dscale = _diag(jtj, stride).astype(np.float64)
     side = np.zeros(p.shape, np.int8)
     n_it = 0
     while pos.size and n_it < max_iter:
@@ -351,7 +353,7 @@ def _solve_block(
             if pos.size == 0:
                 break
         d = np.maximum(dscale, 1e-12 * np.maximum(dscale.max(axis=1, keepdims=True), 1.0))
-        a = jtj.copy()
+        a = jtj.astype(np.float64)
         ad = _diag(a, stride)
         ad += lam[:, None] * d
         # a held parameter gets a diagonal ``hold`` times its own: its step is then the
@@ -380,7 +382,7 @@ def _solve_block(
         # released ones are solved for again, in the first pass below
         release = None
         if predicted.any():
-            mu = grad + np.einsum("vpq,vq->vp", jtj, step) + lam[:, None] * d * step
+            mu = grad + _matvec(jtj, step) + lam[:, None] * d * step
             release = predicted & (side * mu >= 0)
             if not release.any():
                 release = None
@@ -411,7 +413,7 @@ def _solve_block(
             held_c = np.where(fz_old, step[cz], 0.0) + np.where(cc, to_bound, 0.0)
             fz = fz_old | cc
             fixed[cz] = fz
-            a_c = jtj[cz]
+            a_c = jtj[cz].astype(np.float64)
             adc = _diag(a_c, stride)
             adc += lam[cz, None] * d[cz]
             adc += np.where(fz, hold[cz], 0.0)
@@ -433,7 +435,7 @@ def _solve_block(
         cost_new = 0.5 * np.einsum("vm,vm->v", r_new, r_new)
         cost_new[~np.isfinite(cost_new)] = np.inf
         # predicted reduction of the linear model: -(g.d + 0.5 d^T JtJ d)
-        jd = (jtj @ delta[:, :, None])[:, :, 0]
+        jd = _matvec(jtj, delta)
         pred = -(np.einsum("vp,vp->v", grad, delta) + 0.5 * np.einsum("vp,vp->v", delta, jd))
         actual = cost - cost_new
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -485,6 +487,11 @@ def _solve_block(
     cost_out[~valid] = np.nan
     rms = np.sqrt(2.0 * cost_out / n_res)
     return p_out, cost_out, rms, iters, status
+
+
+def _matvec(m, v):
+    """``m @ v`` for stacks ``m (n, P, P)`` and ``v (n, P)``, in the precision of ``m``."""
+    return (m @ v.astype(m.dtype, copy=False)[:, :, None])[:, :, 0]
 
 
 def _diag(a, stride):
