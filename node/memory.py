@@ -124,3 +124,34 @@ def reserve_heap(mb: int | None = None) -> int:
     ctypes.memset(ptr, 0, size)  # every page written, so faulted in
     libc.free(ptr)
     return mb
+
+
+_frozen = False
+
+
+def freeze_startup_objects() -> bool:
+    """Collect, then move every object alive now to the collector's permanent generation
+    (``gc.freeze``), once per process; returns whether it was done now.
+
+    The node's modules (pydicom's data dictionary, highdicom, numpy, scipy) and the start-up
+    calibration leave some hundred thousand long-lived objects, and every full collection of
+    CPython's cyclic garbage collector walks all of them: measured here as 140 ms for one
+    full collection in the middle of a series (9 of them, 0.77 s in all, over three series),
+    wherever it happens to fall, in the ingest or in the budget-bound pass. Frozen, they are
+    skipped; a full collection then walks only what the series made (18 ms). Last series
+    through a node on storescp, 4 runs each: primary 650-856 ms without, 580-654 ms with;
+    all model-free outputs 1.19-1.44 s against 1.09-1.24 s (loaded machine).
+
+    Objects frozen are never collected, so this is done once, when the node has started (the
+    service's objects then live as long as the process). ``CEST_NODE_GC=default`` in the
+    environment leaves the collector as it is.
+    """
+    global _frozen
+    if _frozen or os.environ.get("CEST_NODE_GC", "") == "default":
+        return False
+    import gc
+
+    _frozen = True
+    gc.collect()
+    gc.freeze()
+    return True

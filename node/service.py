@@ -35,7 +35,7 @@ from node.derive import (
     header_only,
     qc_note,
 )
-from node.memory import reserve_heap, tune_allocator
+from node.memory import freeze_startup_objects, reserve_heap, tune_allocator
 from node.metrics import metrics_for
 from node.outbox import Outbox, OutboxWorker, RetryPolicy
 from node.receive import Receiver
@@ -598,6 +598,7 @@ class Node:
                                   process=self._on_series, defer=self._defer_recovered)
         self.receiver.start()
         self._recovery.start()
+        freeze_startup_objects()  # full GC passes skip the start-up objects (node.memory)
         return self
 
     def stop(self) -> None:

@@ -100,3 +100,30 @@ def test_heap_reserve_takes_the_first_series_page_faults() -> None:
     # it none (the heap's pages were faulted in by the reserve and kept)
     assert without >= 16, without
     assert with_reserve <= 0.1 * without, (with_reserve, without)
+
+
+FREEZE_SCRIPT = textwrap.dedent("""
+    import gc
+    from node.memory import freeze_startup_objects
+
+    before = len(gc.get_objects())
+    first, second = freeze_startup_objects(), freeze_startup_objects()
+    print(first, second, before, gc.get_freeze_count(), len(gc.get_objects()))
+""")
+
+
+def test_start_up_objects_are_frozen_once() -> None:
+    # gc.freeze (Python docs, gc module): frozen objects are ignored by later collections;
+    # gc.get_objects lists the tracked objects of the collector's generations only
+    def run_freeze(env_extra: dict[str, str]) -> list[str]:
+        env = {**os.environ, **env_extra}
+        res = subprocess.run([sys.executable, "-c", FREEZE_SCRIPT], capture_output=True,
+                             text=True, env=env, timeout=60, check=True)
+        return res.stdout.split()
+
+    first, second, before, frozen, after = run_freeze({})
+    assert (first, second) == ("True", "False")  # once per process
+    assert int(frozen) >= 0.9 * int(before)  # the start-up objects moved out...
+    assert int(after) < 0.1 * int(before)  # ...of what a full collection walks
+    first, _, _, frozen, _ = run_freeze({"CEST_NODE_GC": "default"})
+    assert first == "False" and frozen == "0"
