@@ -35,7 +35,7 @@ from node.derive import (
     header_only,
     qc_note,
 )
-from node.memory import freeze_startup_objects, reserve_heap, tune_allocator
+from node.memory import freeze_startup_objects, limit_blas_threads, reserve_heap, tune_allocator
 from node.metrics import metrics_for
 from node.outbox import Outbox, OutboxWorker, RetryPolicy
 from node.receive import Receiver
@@ -581,6 +581,7 @@ class Node:
         self._stop.clear()
         tune_allocator()  # before the threads and the calibration (node.memory)
         reserve_heap()  # the first series' page faults, paid now (once per process)
+        limit_blas_threads()  # one BLAS thread beside the node's own (node.memory)
         self._delivery = ThreadPoolExecutor(max_workers=1, thread_name_prefix="cest-deliver")
         self._deferred_thread = threading.Thread(target=self._deferred_loop,
                                                  name="cest-deferred", daemon=True)

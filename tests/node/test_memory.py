@@ -127,3 +127,31 @@ def test_start_up_objects_are_frozen_once() -> None:
     assert int(after) < 0.1 * int(before)  # ...of what a full collection walks
     first, _, _, frozen, _ = run_freeze({"CEST_NODE_GC": "default"})
     assert first == "False" and frozen == "0"
+
+
+BLAS_SCRIPT = textwrap.dedent("""
+    import numpy as np
+    from threadpoolctl import threadpool_info
+    from node.memory import limit_blas_threads
+
+    before = [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"]
+    limited = limit_blas_threads()
+    after = [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"]
+    print(limited, before, after)
+""")
+
+
+def test_blas_is_limited_to_one_thread() -> None:
+    # threadpoolctl's threadpool_info reads the thread count from the BLAS library itself
+    def run_blas(env_extra: dict[str, str]) -> str:
+        env = {**os.environ, **env_extra}
+        for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+            env.pop(var, None)
+        res = subprocess.run([sys.executable, "-c", BLAS_SCRIPT], capture_output=True,
+                             text=True, env=env, timeout=60, check=True)
+        return res.stdout.strip()
+
+    limited, _, after = run_blas({}).split(" ", 2)
+    assert limited == "True" and after.strip("[]").split(", ") != [""]
+    assert set(after.strip("[]").split(", ")) == {"1"}
+    assert run_blas({"CEST_NODE_BLAS_THREADS": "0"}).startswith("False")
