@@ -385,9 +385,10 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    from node.memory import tune_allocator
+    from node.memory import limit_blas_threads, tune_allocator
 
     tune_allocator()  # before any thread takes an arena (node.memory)
+    limit_blas_threads()  # every command, the offline ones too (node.memory)
     args = build_parser().parse_args(argv)
     _setup_logging(args.verbose, quiet=args.command in ("demo", "process", "phantom", "echo",
                                                         "check-config", "conformance", "health",
