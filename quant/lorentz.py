@@ -308,7 +308,7 @@ def _normal_chunk(p, data, r, jtj, g, sc, consts):
     jt[:, last, :] = res
     np.copyto(sc.j, jt.transpose(0, 2, 1))
     gram = np.matmul(jt, sc.j, out=sc.gram)
-    sums = (jt.reshape(m * n_par, n_off) @ wv).reshape(m, n_par)
+    sums = np.matmul(jt, wv)  # one (P, N) product per voxel: its sums never depend on its chunk
     # the rows times their multiples: a congruence of the Gram matrix (s = 1 for the residual)
     gram *= scale[:, :, None]
     gram *= scale[:, None, :]

@@ -282,3 +282,21 @@ def test_fused_normal_equations_match_a_finite_difference_jacobian(f32, weighted
     ref_g = np.einsum("vmp,vm->vp", jac, r)
     np.testing.assert_allclose(jtj, ref_jtj, rtol=0, atol=rtol * np.abs(ref_jtj).max())
     np.testing.assert_allclose(g, ref_g, rtol=0, atol=rtol * np.abs(ref_g).max())
+
+
+def test_a_voxel_fit_does_not_depend_on_the_other_voxels_of_its_batch():
+    # each voxel is its own least-squares problem (common practice; the node's distributed
+    # engine relies on it: tests/node/test_distributed.py): fitted in one batch or in chunks
+    # of any size, every voxel's result is bit for bit the same
+    from quant.phantom import make_phantom
+    from quant.spectra import normalize
+
+    ph = make_phantom(slices=1, size=24, seed=1)
+    sp = normalize(ph.signal, ph.offsets_ppm)
+    z = sp.z[ph.brain]
+    for fit in (lda, multi_lorentzian):
+        whole = fit(z, sp.offsets_ppm).map
+        for chunk in (97, 13):
+            parts = np.concatenate([fit(z[s:s + chunk], sp.offsets_ppm).map
+                                    for s in range(0, len(z), chunk)])
+            assert np.array_equal(whole, parts, equal_nan=True), (fit.__name__, chunk)
