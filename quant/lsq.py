@@ -59,6 +59,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from quant import _jit
+
 __all__ = ["LsqResult", "least_squares_batch", "finite_difference_jacobian"]
 
 #: ``fun(params (n, P), index (n,)) -> residuals (n, M)``; ``index`` picks the voxels
@@ -534,11 +536,23 @@ def _jacobian_normal(fun, jac, p, index, r, lo, hi, n_res, n_par):
 
 
 def _solve(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Batched solve of ``a x = b`` (a: (n, P, P), b: (n, P)); a non-finite step becomes 0."""
-    try:
-        x = np.linalg.solve(a, b[:, :, None])[:, :, 0]
-    except np.linalg.LinAlgError:
-        x = _solve_safe(a, b)
+    """Batched solve of ``a x = b`` (a: (n, P, P) symmetric positive definite, the damped
+    normal equations; b: (n, P)); a non-finite step becomes 0.
+
+    Compiled Cholesky per system (:func:`quant._jit.cholesky_solve`: 0.7 us per 16 x 16
+    system against 1.7 us for numpy's batched LU here); a system whose factorisation fails
+    (not positive definite in floating point) goes to numpy's LU, and a singular one to
+    :func:`_solve_safe`.
+    """
+    x = np.zeros(b.shape, np.float64)
+    ok = np.empty(a.shape[0], dtype=np.bool_)
+    _jit.cholesky_solve(a, np.asarray(b, np.float64), x, ok)
+    if not ok.all():
+        bad = ~ok
+        try:
+            x[bad] = np.linalg.solve(a[bad], b[bad][:, :, None])[:, :, 0]
+        except np.linalg.LinAlgError:
+            x[bad] = _solve_safe(a[bad], b[bad])
     x[~np.isfinite(x)] = 0.0
     return x
 
