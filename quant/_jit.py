@@ -15,10 +15,14 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["cholesky_solve", "lorentz_normal"]
+__all__ = ["cholesky_solve", "damped_solve", "lorentz_normal", "predicted_reduction"]
+
+#: LLVM may reassociate and contract (fused multiply-add) sums, so that it vectorises the dot
+#: products; no assumption that values are finite (NaN and infinity checks stay exact)
+_FAST = {"reassoc", "contract", "arcp", "nsz"}
 
 
-@njit(cache=True, nogil=True, fastmath=True)
+@njit(cache=True, nogil=True, fastmath=_FAST)
 def lorentz_normal(p, x, data, wt, r, jtj, g):  # pragma: no cover - compiled
     """Weighted residuals ``wt (model - data)``, ``J^T J`` and ``J^T r`` of the Lorentzian
     model ``c - sum_k A_k h_k^2 / (h_k^2 + (x - d_k)^2)`` (``h = w / 2``; positions of the
@@ -83,7 +87,7 @@ def lorentz_normal(p, x, data, wt, r, jtj, g):  # pragma: no cover - compiled
                 jtj[v, b, a] = s
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, fastmath=_FAST)
 def cholesky_solve(a, b, x, ok):  # pragma: no cover - compiled
     """Solve ``a[i] x[i] = b[i]`` for each symmetric positive definite ``a[i]`` (n, P, P) by
     Cholesky factorisation (``a = L L^T``, then two triangular solves; Golub & Van Loan,
@@ -122,3 +126,55 @@ def cholesky_solve(a, b, x, ok):  # pragma: no cover - compiled
             for k in range(row + 1, m):
                 t -= lo[k, row] * x[i, k]
             x[i, row] = t / lo[row, row]
+
+
+@njit(cache=True, nogil=True, fastmath=_FAST)
+def damped_solve(jtj, idx, lam, dsc, g_free, fixed, held, hold_weight, out, ok):  # pragma: no cover
+    """The Levenberg-Marquardt step of the voxels ``idx``: for each, the system
+    ``(J^T J + lam D) s = -g`` with the parameters in ``fixed`` held at ``held`` (their
+    diagonal gets ``hold_weight`` times its damped value plus ``D``, their right-hand side that
+    diagonal times ``held``: see :mod:`quant.lsq`), solved by Cholesky into ``out`` (the held
+    values written as they are). ``jtj``, ``lam``, ``dsc`` (``D``) and ``g_free`` are indexed
+    by ``idx``; ``fixed``, ``held``, ``out`` and ``ok`` have one row per entry of ``idx``.
+    ``ok[i]`` is False where the system is not positive definite (``out[i]`` untouched).
+    """
+    m = jtj.shape[1]
+    a = np.empty((1, m, m))
+    b = np.empty((1, m))
+    x = np.empty((1, m))
+    flag = np.empty(1, dtype=np.bool_)
+    for i in range(idx.size):
+        v = idx[i]
+        for r in range(m):
+            for c in range(m):
+                a[0, r, c] = jtj[v, r, c]
+        for k in range(m):
+            dk = a[0, k, k] + lam[v] * dsc[v, k]
+            if fixed[i, k]:
+                dk += hold_weight * (dk + dsc[v, k])
+                b[0, k] = dk * held[i, k]
+            else:
+                b[0, k] = -g_free[v, k]
+            a[0, k, k] = dk
+        cholesky_solve(a, b, x, flag)
+        ok[i] = flag[0]
+        if flag[0]:
+            for k in range(m):
+                out[i, k] = held[i, k] if fixed[i, k] else x[0, k]
+
+
+@njit(cache=True, nogil=True, fastmath=_FAST)
+def predicted_reduction(jtj, grad, delta, out):  # pragma: no cover - compiled
+    """``out[i] = -(g_i . d_i + 0.5 d_i^T (J^T J)_i d_i)``: the cost reduction the linear model
+    predicts for the step ``d`` (the denominator of the gain ratio)."""
+    n, m = grad.shape
+    for i in range(n):
+        quad = 0.0
+        lin = 0.0
+        for r in range(m):
+            s = 0.0
+            for c in range(m):
+                s += jtj[i, r, c] * delta[i, c]
+            quad += delta[i, r] * s
+            lin += grad[i, r] * delta[i, r]
+        out[i] = -(lin + 0.5 * quad)

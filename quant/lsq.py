@@ -2,10 +2,12 @@
 
 Every voxel is its own problem ``min_p 0.5 * ||r(p)||^2`` with the same number of parameters
 ``P`` and residuals ``M``. The solver keeps the parameters of all voxels in one array ``(V, P)``,
-forms the normal equations of all voxels with one batched matrix product and solves them with
-one batched ``numpy.linalg.solve``. Damping, step acceptance and convergence are per voxel; a
-converged voxel leaves the active set and costs nothing afterwards. There is no Python loop over
-voxels, only over iterations (and over blocks of voxels, to bound memory).
+takes the normal equations of all voxels from the model in one call, and builds and solves each
+voxel's damped system in one compiled pass over the batch (:func:`quant._jit.damped_solve`:
+Cholesky, with numpy's LU for a system that is not positive definite). Damping, step acceptance
+and convergence are per voxel; a converged voxel leaves the active set and costs nothing
+afterwards. There is no Python loop over voxels, only over iterations (and over blocks of
+voxels, to bound memory).
 
 Algorithm (Levenberg 1944, Marquardt 1963; the damping update and the gain ratio as in
 Madsen, Nielsen & Tingleff, "Methods for non-linear least squares problems", 2nd ed., DTU 2004,
@@ -42,8 +44,9 @@ Convergence (per voxel, the tests of ``scipy.optimize.least_squares``, reference
 A voxel that reaches ``max_iter`` without meeting one of them is reported ``converged=False``.
 
 Measured on the 5-pool Lorentzian fit of tests/bench/bench_fits.py and not kept: a batched
-Cholesky (LAPACK factor with vectorised substitution, or a vectorised factorisation with the
-voxels last) instead of ``numpy.linalg.solve`` (no faster once the layout changes are paid),
+Cholesky in numpy (LAPACK factor with vectorised substitution, or a vectorised factorisation
+with the voxels last) instead of ``numpy.linalg.solve`` (no faster once the layout changes are
+paid; the compiled per-system Cholesky that replaced both is 0.7 against 1.7 us a system),
 LAPACK's banded solver on the block-diagonal system (no faster), geodesic acceleration
 (Transtrum & Sethna 2012, from memory: 6% fewer steps but a second solve and a second model
 pass per step), re-fitting the linear amplitudes at each trial (fewer steps, worse minima),
@@ -365,30 +368,20 @@ def _solve_block(
             if pos.size == 0:
                 break
         d = np.maximum(dscale, 1e-12 * np.maximum(dscale.max(axis=1, keepdims=True), 1.0))
-        a = jtj.astype(np.float64)
-        ad = _diag(a, stride)
-        ad += lam[:, None] * d
         # a held parameter gets a diagonal ``hold`` times its own: its step is then the
         # prescribed value to 1e-12 relative and the others see it through their coupling,
         # the reduced system without re-indexing. Held are the frozen ones (step 0) and, as a
         # prediction, those that crossed a bound in the previous trial (step ``approach`` of
         # the way to that bound): the crossing set rarely changes from one step to the next,
-        # so the first solve is usually the final one
-        hold = _HOLD * (ad + d)
+        # so the first solve is usually the final one. Each system is built and solved per
+        # voxel in one compiled pass (_damped_steps)
         predicted = (side != 0) & ~frozen
         dist = np.where(side < 0, lo - p, hi - p)
         if approach < 1.0:
             dist = np.where(np.abs(dist) > near_tol, approach * dist, dist)
         fixed = frozen | predicted
         held = np.where(predicted, dist, 0.0)
-        any_fixed = fixed.any()
-        if any_fixed:
-            ad += np.where(fixed, hold, 0.0)
-            step = _solve(a, np.where(fixed, ad * held, -g_free))
-            step = np.where(fixed, held, step)
-        else:
-            step = _solve(a, -g_free)
-        del a
+        step = _damped_steps(jtj, np.arange(pos.size), lam, d, g_free, fixed, held)
         # a predicted hold is kept while the model still pulls the parameter towards its bound
         # (the sign of its Lagrange multiplier, the gradient of the damped model there);
         # released ones are solved for again, in the first pass below
@@ -425,12 +418,7 @@ def _solve_block(
             held_c = np.where(fz_old, step[cz], 0.0) + np.where(cc, to_bound, 0.0)
             fz = fz_old | cc
             fixed[cz] = fz
-            a_c = jtj[cz].astype(np.float64)
-            adc = _diag(a_c, stride)
-            adc += lam[cz, None] * d[cz]
-            adc += np.where(fz, hold[cz], 0.0)
-            rhs = np.where(fz, adc * held_c, -g_free[cz])
-            step[cz] = np.where(fz, held_c, _solve(a_c, rhs))
+            step[cz] = _damped_steps(jtj, cz, lam, d, g_free, fz, held_c)
             sub = cz
         # what still crosses a bound is projected (``approach`` of the way to the bound)
         trial = p + step
@@ -447,8 +435,8 @@ def _solve_block(
         cost_new = 0.5 * np.einsum("vm,vm->v", r_new, r_new)
         cost_new[~np.isfinite(cost_new)] = np.inf
         # predicted reduction of the linear model: -(g.d + 0.5 d^T JtJ d)
-        jd = _matvec(jtj, delta)
-        pred = -(np.einsum("vp,vp->v", grad, delta) + 0.5 * np.einsum("vp,vp->v", delta, jd))
+        pred = np.empty(pos.size)
+        _jit.predicted_reduction(jtj, grad, delta, pred)
         actual = cost - cost_new
         with np.errstate(divide="ignore", invalid="ignore"):
             rho = np.where(pred > 0, actual / pred, -1.0)
@@ -533,6 +521,28 @@ def _jacobian_normal(fun, jac, p, index, r, lo, hi, n_res, n_par):
         j = np.asarray(jac(p, index), dtype=np.float64)
     _check_jac(j, p.shape[0], n_res, n_par)
     return _normal_equations(j, r)
+
+
+def _damped_steps(jtj, idx, lam, d, g_free, fixed, held):
+    """Steps of the voxels ``idx``: ``(J^T J + lam D) s = -g`` with ``fixed`` held at
+    ``held`` (diagonal plus :data:`_HOLD` times its damped value and ``D``), by
+    :func:`quant._jit.damped_solve`; a system that is not positive definite is built and
+    solved here with numpy instead (:func:`_solve`). ``fixed``/``held`` have one row per
+    entry of ``idx``; a non-finite step becomes 0."""
+    out = np.empty((idx.size, jtj.shape[1]))
+    ok = np.empty(idx.size, dtype=np.bool_)
+    _jit.damped_solve(jtj, idx, lam, d, g_free, fixed, held, _HOLD, out, ok)
+    if not ok.all():
+        bad = np.flatnonzero(~ok)
+        v = idx[bad]
+        a = jtj[v].astype(np.float64)
+        ad = _diag(a, a.shape[1] + 1)
+        ad += lam[v, None] * d[v]
+        ad += np.where(fixed[bad], _HOLD * (ad + d[v]), 0.0)
+        step = _solve(a, np.where(fixed[bad], ad * held[bad], -g_free[v]))
+        out[bad] = np.where(fixed[bad], held[bad], step)
+    out[~np.isfinite(out)] = 0.0
+    return out
 
 
 def _solve(a: np.ndarray, b: np.ndarray) -> np.ndarray:
