@@ -2,9 +2,10 @@
 
 Every voxel is its own problem ``min_p 0.5 * ||r(p)||^2`` with the same number of parameters
 ``P`` and residuals ``M``. The solver keeps the parameters of all voxels in one array ``(V, P)``,
-takes the normal equations of all voxels from the model in one call, and builds and solves each
-voxel's damped system in one compiled pass over the batch (:func:`quant._jit.damped_solve`:
-Cholesky, with numpy's LU for a system that is not positive definite). Damping, step acceptance
+takes the normal equations of all voxels from the model in one call, and makes every voxel's
+bounded trial step in one compiled pass over the batch (:func:`quant._jit.lm_trial`: the damped
+system solved by Cholesky, by Gaussian elimination with partial pivoting where it is not
+positive definite, a zero step where it is singular). Damping, step acceptance
 and convergence are per voxel; a converged voxel leaves the active set and costs nothing
 afterwards. There is no Python loop over voxels, only over iterations (and over blocks of
 voxels, to bound memory).
@@ -367,70 +368,25 @@ def _solve_block(
             )
             if pos.size == 0:
                 break
-        d = np.maximum(dscale, 1e-12 * np.maximum(dscale.max(axis=1, keepdims=True), 1.0))
-        # a held parameter gets a diagonal ``hold`` times its own: its step is then the
-        # prescribed value to 1e-12 relative and the others see it through their coupling,
-        # the reduced system without re-indexing. Held are the frozen ones (step 0) and, as a
-        # prediction, those that crossed a bound in the previous trial (step ``approach`` of
-        # the way to that bound): the crossing set rarely changes from one step to the next,
-        # so the first solve is usually the final one. Each system is built and solved per
-        # voxel in one compiled pass (_damped_steps)
-        predicted = (side != 0) & ~frozen
-        dist = np.where(side < 0, lo - p, hi - p)
-        if approach < 1.0:
-            dist = np.where(np.abs(dist) > near_tol, approach * dist, dist)
-        fixed = frozen | predicted
-        held = np.where(predicted, dist, 0.0)
-        step = _damped_steps(jtj, np.arange(pos.size), lam, d, g_free, fixed, held)
-        # a predicted hold is kept while the model still pulls the parameter towards its bound
-        # (the sign of its Lagrange multiplier, the gradient of the damped model there);
-        # released ones are solved for again, in the first pass below
-        release = None
-        if predicted.any():
-            mu = grad + _matvec(jtj, step) + lam[:, None] * d * step
-            release = predicted & (side * mu >= 0)
-            if not release.any():
-                release = None
-        # a step that crosses a bound: hold those parameters (on the bound, or ``approach`` of
-        # the way there) and re-solve for the others (a few passes), instead of clipping a
-        # correlated step
-        sub = None  # a later pass only revisits the voxels re-solved
-        for _pass in range(3):
-            if sub is None:
-                trial = p + step
-                crossing = ((trial < lo) | (trial > hi)) & ~fixed
-                redo = crossing if release is None else crossing | release
-            else:
-                trial = p[sub] + step[sub]
-                crossing = ((trial < lo) | (trial > hi)) & ~fixed[sub]
-                redo = crossing
-            loc = np.flatnonzero(redo.any(axis=1))
-            if loc.size == 0:
-                break
-            cz = loc if sub is None else sub[loc]
-            cc = crossing[loc]
-            to_bound = np.clip(trial[loc], lo, hi) - p[cz]
-            if approach < 1.0:
-                to_bound = np.where(np.abs(to_bound) > near_tol, approach * to_bound, to_bound)
-            fz_old = fixed[cz]
-            if sub is None and release is not None:
-                fz_old &= ~release[cz]
-            held_c = np.where(fz_old, step[cz], 0.0) + np.where(cc, to_bound, 0.0)
-            fz = fz_old | cc
-            fixed[cz] = fz
-            step[cz] = _damped_steps(jtj, cz, lam, d, g_free, fz, held_c)
-            sub = cz
-        # what still crosses a bound is projected (``approach`` of the way to the bound)
-        trial = p + step
-        p_new = np.clip(trial, lo, hi)
-        if approach < 1.0:
-            to_bound = p_new - p
-            cut = (p_new != trial) & (np.abs(to_bound) > near_tol)
-            p_new = np.where(cut, p + approach * to_bound, p_new)
-        delta = p_new - p
-        # the prediction for the next trial: the parameters held off a bound in this one
-        # (the frozen ones are found again from the gradient)
-        side = np.where(fixed & ~frozen, np.sign(step).astype(np.int8), np.int8(0))
+        # the trial point of every voxel in one compiled pass (quant._jit.lm_trial): the
+        # damped step, with each held parameter given a diagonal ``_HOLD`` times its own (its
+        # step is then the prescribed value to 1e-12 relative and the others see it through
+        # their coupling, the reduced system without re-indexing). Held are the frozen ones
+        # (step 0) and, as a prediction, those that crossed a bound in the previous trial
+        # (step ``approach`` of the way to that bound): the crossing set rarely changes from
+        # one step to the next, so the first solve is usually the final one. A predicted hold
+        # is kept while the model still pulls the parameter towards its bound (the sign of its
+        # Lagrange multiplier, the gradient of the damped model there). A step that crosses a
+        # bound holds those parameters (on the bound, or ``approach`` of the way there) and is
+        # solved again for the others (up to three passes), instead of clipping a correlated
+        # step; what still crosses is projected (``approach`` of the way to the bound). The
+        # next prediction is the set of parameters held off a bound in this trial.
+        p_new = np.empty_like(p)
+        delta = np.empty_like(p)
+        side_new = np.empty_like(side)
+        _jit.lm_trial(jtj, grad, g_free, p, lam, dscale, side, frozen, lo, hi, approach,
+                      near_tol, _HOLD, p_new, delta, side_new)
+        side = side_new
         r_new, ne_new = _evaluate(fun, jac, p_new, index[pos], lo, hi, n_res, n_par, eager)
         cost_new = 0.5 * np.einsum("vm,vm->v", r_new, r_new)
         cost_new[~np.isfinite(cost_new)] = np.inf
@@ -489,11 +445,6 @@ def _solve_block(
     return p_out, cost_out, rms, iters, status
 
 
-def _matvec(m, v):
-    """``m @ v`` for stacks ``m (n, P, P)`` and ``v (n, P)``, in the precision of ``m``."""
-    return (m @ v.astype(m.dtype, copy=False)[:, :, None])[:, :, 0]
-
-
 def _diag(a, stride):
     """The diagonals of a C-contiguous stack ``(m, P, P)`` as a writable view ``(m, P)``."""
     return a.reshape(a.shape[0], a.shape[1] * a.shape[2])[:, ::stride]
@@ -521,56 +472,3 @@ def _jacobian_normal(fun, jac, p, index, r, lo, hi, n_res, n_par):
         j = np.asarray(jac(p, index), dtype=np.float64)
     _check_jac(j, p.shape[0], n_res, n_par)
     return _normal_equations(j, r)
-
-
-def _damped_steps(jtj, idx, lam, d, g_free, fixed, held):
-    """Steps of the voxels ``idx``: ``(J^T J + lam D) s = -g`` with ``fixed`` held at
-    ``held`` (diagonal plus :data:`_HOLD` times its damped value and ``D``), by
-    :func:`quant._jit.damped_solve`; a system that is not positive definite is built and
-    solved here with numpy instead (:func:`_solve`). ``fixed``/``held`` have one row per
-    entry of ``idx``; a non-finite step becomes 0."""
-    out = np.empty((idx.size, jtj.shape[1]))
-    ok = np.empty(idx.size, dtype=np.bool_)
-    _jit.damped_solve(jtj, idx, lam, d, g_free, fixed, held, _HOLD, out, ok)
-    if not ok.all():
-        bad = np.flatnonzero(~ok)
-        v = idx[bad]
-        a = jtj[v].astype(np.float64)
-        ad = _diag(a, a.shape[1] + 1)
-        ad += lam[v, None] * d[v]
-        ad += np.where(fixed[bad], _HOLD * (ad + d[v]), 0.0)
-        step = _solve(a, np.where(fixed[bad], ad * held[bad], -g_free[v]))
-        out[bad] = np.where(fixed[bad], held[bad], step)
-    out[~np.isfinite(out)] = 0.0
-    return out
-
-
-def _solve(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Batched solve of ``a x = b`` (a: (n, P, P) symmetric positive definite, the damped
-    normal equations; b: (n, P)); a non-finite step becomes 0.
-
-    Compiled Cholesky per system (:func:`quant._jit.cholesky_solve`: 0.7 us per 16 x 16
-    system against 1.7 us for numpy's batched LU here); a system whose factorisation fails
-    (not positive definite in floating point) goes to numpy's LU, and a singular one to
-    :func:`_solve_safe`.
-    """
-    x = np.zeros(b.shape, np.float64)
-    ok = np.empty(a.shape[0], dtype=np.bool_)
-    _jit.cholesky_solve(a, np.asarray(b, np.float64), x, ok)
-    if not ok.all():
-        bad = ~ok
-        try:
-            x[bad] = np.linalg.solve(a[bad], b[bad][:, :, None])[:, :, 0]
-        except np.linalg.LinAlgError:
-            x[bad] = _solve_safe(a[bad], b[bad])
-    x[~np.isfinite(x)] = 0.0
-    return x
-
-
-def _solve_safe(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Least-squares solve of a batch where some systems are singular (gives a 0-norm-safe step)."""
-    out = np.zeros_like(b)
-    ok = np.linalg.cond(a) < 1e14
-    if np.any(ok):
-        out[ok] = np.linalg.solve(a[ok], b[ok][:, :, None])[:, :, 0]
-    return out

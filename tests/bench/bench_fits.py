@@ -65,11 +65,11 @@ def _spread(times):
 def _time_split(f):
     """One more run of ``f`` with the model kernel and the batched solves timed: where the
     batched fit's time goes (the timers cost a few per cent; this run is not in the medians)."""
+    from quant import _jit
     from quant import lorentz as lz
-    from quant import lsq
 
     spent = {"kernel": 0.0, "solve": 0.0}
-    kernel, solve = lz._residual_normal, lsq._damped_steps
+    kernel, solve = lz._residual_normal, _jit.lm_trial
 
     def timed(name, g):
         def inner(*a, **k):
@@ -80,17 +80,17 @@ def _time_split(f):
                 spent[name] += time.perf_counter() - t
         return inner
 
-    lz._residual_normal, lsq._damped_steps = timed("kernel", kernel), timed("solve", solve)
+    lz._residual_normal, _jit.lm_trial = timed("kernel", kernel), timed("solve", solve)
     try:
         t = time.perf_counter()
         f()
         total = time.perf_counter() - t
     finally:
-        lz._residual_normal, lsq._damped_steps = kernel, solve
+        lz._residual_normal, _jit.lm_trial = kernel, solve
     rest = total - spent["kernel"] - spent["solve"]
     return (
         f"{total:.2f} s: model kernel (residuals + normal equations) {spent['kernel']:.2f} s "
-        f"({spent['kernel'] / total:.0%}), damped systems built and solved {spent['solve']:.2f} s "
+        f"({spent['kernel'] / total:.0%}), trial steps (damped systems, bounds) {spent['solve']:.2f} s "
         f"({spent['solve'] / total:.0%}), solver bookkeeping and the rest {rest:.2f} s ({rest / total:.0%})"
     )
 
