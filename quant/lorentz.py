@@ -760,9 +760,9 @@ def lda(
 
 # ----------------------------------------------------------------------------------------------
 # registry entries (model-based: the scheduler defers them). Maps in % of M0 like the
-# model-free measures; cost per voxel measured by tests/bench/bench_fits.py (SNR 60, 61 offsets,
-# one core: multi_lorentzian init='table' 5.6 s per 128 x 128 under the load seen, i.e.
-# 3.4e-4 s per voxel; lda 8.3e-5).
+# model-free measures; cost per voxel measured on tests/bench/bench_fits.py's spectra (SNR 60,
+# 61 offsets, one core, quiet machine, compiled kernels: multi_lorentzian init='table' 2.36 s
+# per 128 x 128, i.e. 1.4e-4 s per voxel; lda 0.41 s, 2.5e-5 s).
 
 
 def _lda_percent(z, offsets_ppm, *, t1_s=None):
@@ -780,13 +780,13 @@ def _register() -> None:
         # needs_b0=False: the fit places the water line itself (within +-1 ppm), and the
         # B0-resampled spectra are NaN at the outermost offsets of shifted voxels, which the
         # MT part of the reference needs
-        register(MethodInfo("lda", "Lorentzian difference 3.5 ppm", "%", False, False, 8.3e-5,
+        register(MethodInfo("lda", "Lorentzian difference 3.5 ppm", "%", False, False, 2.5e-5,
                             _lda_percent, needs_b0=False))
     if "multi_lorentzian" not in METHODS:
         register(
             MethodInfo(
                 "multi_lorentzian", "Amide amplitude, 5-pool Lorentzian fit", "%", False, False,
-                3.4e-4, _multi_lorentzian_percent, needs_b0=False,
+                1.4e-4, _multi_lorentzian_percent, needs_b0=False,
             )
         )
 
