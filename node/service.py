@@ -45,6 +45,7 @@ from node.send import Sender, SendReport, SendSession, SendSettings
 from node.spool import Spool
 from node.timing import LatencyLog, SeriesClock
 from node.types import AssembledSeries, OutputBatch, uid_from
+from quant import warm_fits
 from quant.qc import (
     QcFigures,
     QcReason,
@@ -591,6 +592,12 @@ class Node:
             self.worker.start()
         if self.config.metrics.calibrate:
             self.calibration = calibrate_for(self.processor.cost, self.config.protocols)
+        if any(p.model_based and any(m in METHODS and not METHODS[m].model_free
+                                     for m in p.methods) for p in self.config.protocols):
+            # the fits' compiled loops, loaded (or compiled, once per checkout) now rather
+            # than by the first deferred pass, where compiling would hold the interpreter
+            # for seconds beside the next series' primary pass
+            warm_fits()
         if self.config.metrics.enabled:
             self.metrics.serve(self.config.metrics.host, self.config.metrics.port)
         # the plan is read before the receiver listens: a new series is never taken for an

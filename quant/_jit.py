@@ -271,3 +271,21 @@ def lm_trial(jtj, grad, g_free, p, lam, dscale, side, frozen, lower, upper, appr
                 side_out[v, k] = 1 if step[k] > 0 else (-1 if step[k] < 0 else 0)
             else:
                 side_out[v, k] = 0
+
+
+def warm() -> None:
+    """Compile (or load from the on-disk cache) every function here on tiny inputs, so that
+    the first fit does not pay it (a few seconds to compile in a fresh checkout; a fraction of
+    a second to load afterwards)."""
+    p = np.array([[1.0, 0.9, 1.0, 0.0]])
+    x = np.linspace(-2.0, 2.0, 5)
+    data = np.ones((1, 5))
+    r, jtj, g = np.empty((1, 5)), np.empty((1, 4, 4)), np.empty((1, 4))
+    lorentz_normal(p, x, data, np.ones(5), r, jtj, g)
+    pred = np.empty(1)
+    predicted_reduction(jtj, g, g, pred)
+    lo, hi = np.full(4, -10.0), np.full(4, 10.0)
+    side = np.zeros((1, 4), np.int8)
+    lm_trial(jtj + np.eye(4), g, g, p, np.ones(1), np.ones((1, 4)), side,
+             np.zeros((1, 4), np.bool_), lo, hi, 0.5, np.full(4, 1e-3), 1e12,
+             np.empty((1, 4)), np.empty((1, 4)), np.empty((1, 4), np.int8))

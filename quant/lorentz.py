@@ -34,7 +34,6 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage, stats
 
-from quant import _jit
 from quant.lsq import least_squares_batch
 
 __all__ = [
@@ -206,6 +205,8 @@ def _residual_normal(params, x, data, weights=None):
     jtj = np.empty((n, n_par, n_par))
     g = np.empty((n, n_par))
     wt = np.ones(x.size) if weights is None else np.ascontiguousarray(weights, np.float64)
+    from quant import _jit  # numba, imported on the first fit (about 1 s)
+
     _jit.lorentz_normal(params, x, data, wt, r, jtj, g)
     return r, jtj, g
 

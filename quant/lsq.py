@@ -63,8 +63,6 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from quant import _jit
-
 __all__ = ["LsqResult", "least_squares_batch", "finite_difference_jacobian"]
 
 #: ``fun(params (n, P), index (n,)) -> residuals (n, M)``; ``index`` picks the voxels
@@ -320,6 +318,8 @@ def _solve_block(
     """One block of voxels. The working arrays hold the active voxels only: a voxel that
     finishes is written out and dropped (compaction), so late iterations cost what the few
     remaining voxels cost, without fancy indexing of the whole block at every step."""
+    from quant import _jit  # numba, imported on the first fit (about 1 s)
+
     n, n_par = p0.shape
     eager = "normal" if jac == "normal" else ("jac" if jac is True else None)
     p_out = np.clip(p0, lo, hi)
