@@ -59,6 +59,36 @@ _done: bool | None = None
 _reserved = False
 
 
+_libc: list[ctypes.CDLL | None] = []
+
+
+def _glibc() -> ctypes.CDLL | None:
+    """The process's C library when it is glibc (loaded once), else None: other C libraries'
+    mallopt parameters differ."""
+    if not _libc:
+        lib = None
+        name = ctypes.util.find_library("c")
+        if name:
+            try:
+                lib = ctypes.CDLL(name)
+                if not (hasattr(lib, "gnu_get_libc_version") and hasattr(lib, "mallopt")):
+                    lib = None
+            except OSError:
+                lib = None
+        _libc.append(lib)
+    return _libc[0]
+
+
+def _env_int(name: str, default: int) -> int:
+    """An integer setting from the environment (``default`` when unset; a warning and
+    ``default`` when it is not an integer)."""
+    try:
+        return int(os.environ.get(name, default))
+    except ValueError:
+        log.warning("memory: %s is not an integer; using %d", name, default)
+        return default
+
+
 def tune_allocator() -> bool:
     """Apply :data:`SETTINGS` once per process; returns whether they are in force."""
     global _done
@@ -67,16 +97,10 @@ def tune_allocator() -> bool:
     _done = False
     if os.environ.get("CEST_NODE_MALLOC", "") == "default":
         return False
-    name = ctypes.util.find_library("c")
-    if not name:
+    libc = _glibc()
+    if libc is None:
         return False
-    try:
-        libc = ctypes.CDLL(name)
-        mallopt = libc.mallopt
-        if not hasattr(libc, "gnu_get_libc_version"):
-            return False  # not glibc: its mallopt parameters differ
-    except (OSError, AttributeError):
-        return False
+    mallopt = libc.mallopt
     mallopt.argtypes = [ctypes.c_int, ctypes.c_int]
     mallopt.restype = ctypes.c_int
     ok = all(mallopt(param, value) == 1 for param, value in SETTINGS.items())
@@ -102,18 +126,14 @@ def reserve_heap(mb: int | None = None) -> int:
     if _reserved or not tune_allocator():
         return 0
     if mb is None:
-        try:
-            mb = int(os.environ.get("CEST_NODE_HEAP_RESERVE_MB", HEAP_RESERVE_MB))
-        except ValueError:
-            log.warning("memory: CEST_NODE_HEAP_RESERVE_MB is not an integer; using %d",
-                        HEAP_RESERVE_MB)
-            mb = HEAP_RESERVE_MB
+        mb = _env_int("CEST_NODE_HEAP_RESERVE_MB", HEAP_RESERVE_MB)
     _reserved = True
     if mb <= 0:
         return 0
     # plain malloc and memset, not numpy: numpy advises huge pages for large arrays, and a
     # huge-page fault here costs far more (384 MiB: 1.0 s against 0.19 s in 4 KiB pages)
-    libc = ctypes.CDLL(ctypes.util.find_library("c"))
+    libc = _glibc()
+    assert libc is not None  # tune_allocator() found it
     libc.malloc.argtypes, libc.malloc.restype = [ctypes.c_size_t], ctypes.c_void_p
     libc.free.argtypes, libc.free.restype = [ctypes.c_void_p], None
     size = mb << 20
@@ -181,11 +201,7 @@ def limit_blas_threads() -> bool:
     if _blas_limited is not None:
         return _blas_limited
     _blas_limited = False
-    try:
-        n = int(os.environ.get("CEST_NODE_BLAS_THREADS", BLAS_THREADS))
-    except ValueError:
-        log.warning("memory: CEST_NODE_BLAS_THREADS is not an integer; using %d", BLAS_THREADS)
-        n = BLAS_THREADS
+    n = _env_int("CEST_NODE_BLAS_THREADS", BLAS_THREADS)
     if n <= 0:
         return False
     try:

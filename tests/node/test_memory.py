@@ -45,12 +45,19 @@ SCRIPT = textwrap.dedent("""
 """)
 
 
+#: what the environment may hold that would change the behaviour under test
+TUNING_VARS = ("MALLOC_ARENA_MAX", "OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+
+
+def run_script(script: str, env_extra: dict[str, str]) -> str:
+    """The stdout of ``script`` in a fresh interpreter (no tuning variables but ``env_extra``)."""
+    env = {k: v for k, v in os.environ.items() if k not in TUNING_VARS} | env_extra
+    return subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                          env=env, timeout=60, check=True).stdout
+
+
 def run(env_extra: dict[str, str]) -> tuple[bool, float]:
-    env = {**os.environ, **env_extra}
-    env.pop("MALLOC_ARENA_MAX", None)
-    res = subprocess.run([sys.executable, "-c", SCRIPT], capture_output=True, text=True,
-                         env=env, timeout=60, check=True)
-    tuned, per_round = res.stdout.split()
+    tuned, per_round = run_script(SCRIPT, env_extra).split()
     return tuned == "True", float(per_round)
 
 
@@ -84,11 +91,7 @@ RESERVE_SCRIPT = textwrap.dedent("""
 
 def test_heap_reserve_takes_the_first_series_page_faults() -> None:
     def first_array(env_extra: dict[str, str]) -> tuple[int, int]:
-        env = {**os.environ, **env_extra}
-        env.pop("MALLOC_ARENA_MAX", None)
-        res = subprocess.run([sys.executable, "-c", RESERVE_SCRIPT], capture_output=True,
-                             text=True, env=env, timeout=60, check=True)
-        reserved, n = res.stdout.split()
+        reserved, n = run_script(RESERVE_SCRIPT, env_extra).split()
         return int(reserved), int(n)
 
     reserved, with_reserve = first_array({})
@@ -116,10 +119,7 @@ def test_start_up_objects_are_frozen_once() -> None:
     # gc.freeze (Python docs, gc module): frozen objects are ignored by later collections;
     # gc.get_objects lists the tracked objects of the collector's generations only
     def run_freeze(env_extra: dict[str, str]) -> list[str]:
-        env = {**os.environ, **env_extra}
-        res = subprocess.run([sys.executable, "-c", FREEZE_SCRIPT], capture_output=True,
-                             text=True, env=env, timeout=60, check=True)
-        return res.stdout.split()
+        return run_script(FREEZE_SCRIPT, env_extra).split()
 
     first, second, before, frozen, after = run_freeze({})
     assert (first, second) == ("True", "False")  # once per process
@@ -144,12 +144,7 @@ BLAS_SCRIPT = textwrap.dedent("""
 def test_blas_is_limited_to_one_thread() -> None:
     # threadpoolctl's threadpool_info reads the thread count from the BLAS library itself
     def run_blas(env_extra: dict[str, str]) -> str:
-        env = {**os.environ, **env_extra}
-        for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
-            env.pop(var, None)
-        res = subprocess.run([sys.executable, "-c", BLAS_SCRIPT], capture_output=True,
-                             text=True, env=env, timeout=60, check=True)
-        return res.stdout.strip()
+        return run_script(BLAS_SCRIPT, env_extra).strip()
 
     limited, _, after = run_blas({}).split(" ", 2)
     assert limited == "True" and after.strip("[]").split(", ") != [""]
