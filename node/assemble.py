@@ -898,13 +898,8 @@ class Assembler:
             return
         with self._cond:
             s = self._series.get(prep.key)
-            if s is None:
-                return
-            if (prep.rows, prep.cols) != (s.rows, s.cols):
-                raise AssemblyError(f"Rows/Columns: {prep.rows} x {prep.cols} differs from the "
-                                    f"series' {s.rows} x {s.cols}")
-            if not _same_orientation(prep.orientation, s.orientation):
-                raise AssemblyError("ImageOrientationPatient: differs from the series'")
+            if s is not None:
+                _check_fits(prep, s)
 
     def place(self, prep: Prepared) -> Placed:
         """Put a prepared instance's frames into its series (the only stateful step).
@@ -941,11 +936,7 @@ class Assembler:
                 new_series = True
             else:
                 new_series = False
-            if (prep.rows, prep.cols) != (s.rows, s.cols):
-                raise AssemblyError(f"Rows/Columns: {prep.rows} x {prep.cols} differs from the "
-                                    f"series' {s.rows} x {s.cols}")
-            if not _same_orientation(prep.orientation, s.orientation):
-                raise AssemblyError("ImageOrientationPatient: differs from the series'")
+            _check_fits(prep, s)
             if prep.sop_instance_uid in s.sops:
                 log.info("series %s: duplicate instance ignored (first kept)", s.key)
                 return Placed.DUPLICATE
@@ -1161,6 +1152,15 @@ class Assembler:
                     log.exception("series %s: on_complete failed", s.key)
             finally:
                 self._work.task_done()
+
+
+def _check_fits(prep: Prepared, s: _Series) -> None:
+    """The AssemblyError of an instance whose matrix size or orientation is not its series'."""
+    if (prep.rows, prep.cols) != (s.rows, s.cols):
+        raise AssemblyError(f"Rows/Columns: {prep.rows} x {prep.cols} differs from the "
+                            f"series' {s.rows} x {s.cols}")
+    if not _same_orientation(prep.orientation, s.orientation):
+        raise AssemblyError("ImageOrientationPatient: differs from the series'")
 
 
 # --------------------------------------------------------------------------- finishing
