@@ -9,7 +9,10 @@ The receive tests of tests/node/test_receive.py run here a second time with the 
 from __future__ import annotations
 
 import random
+import socket
+import struct
 import threading
+import time
 from io import BytesIO
 from pathlib import Path
 
@@ -254,6 +257,102 @@ def test_fast_path_falls_back_for_other_messages_on_one_association(tmp_path):
         back = dcmread(rx.spool.path_for(rec.key, dss[2].SOPInstanceUID))
         assert back.file_meta.TransferSyntaxUID == ImplicitVRLittleEndian
         assert back.PixelData == dss[2].PixelData
+    finally:
+        rx.stop()
+
+
+# --------------------------------------------------------------------------- raw PDUs
+def _item(kind: int, value: bytes) -> bytes:
+    """A PS3.8 9.3.2 variable item: type, reserved, 2-byte length, value."""
+    return struct.pack(">BBH", kind, 0, len(value)) + value
+
+
+def _associate_rq(called: str, calling: str, abstract: str, transfer: str) -> bytes:
+    """A-ASSOCIATE-RQ (PS3.8 9.3.2) with one presentation context (ID 1) and the user
+    information items PS3.7 D.3.3 requires (Maximum Length 0: no limit; Implementation
+    Class UID)."""
+    pc = bytes([1, 0, 0, 0]) + _item(0x30, abstract.encode()) + _item(0x40, transfer.encode())
+    user = (_item(0x51, struct.pack(">L", 0))
+            + _item(0x52, PYNETDICOM_IMPLEMENTATION_UID.encode()))
+    body = (struct.pack(">HH", 1, 0) + called.encode().ljust(16) + calling.encode().ljust(16)
+            + bytes(32) + _item(0x10, b"1.2.840.10008.3.1.1.1") + _item(0x20, pc)
+            + _item(0x50, user))
+    return struct.pack(">BBL", 0x01, 0, len(body)) + body
+
+
+def _read_pdu(sock: socket.socket) -> tuple[int, bytes]:
+    def exactly(n: int) -> bytes:
+        out = b""
+        while len(out) < n:
+            got = sock.recv(n - len(out))
+            assert got, "the node closed the connection"
+            out += got
+        return out
+    head = exactly(6)
+    return head[0], exactly(struct.unpack(">L", head[2:])[0])
+
+
+def _response_status(body: bytes) -> int:
+    """Status (0000,0900) of the C-STORE-RSP in one P-DATA-TF body (one PDV, PS3.8 9.3.5)."""
+    assert body[5] == 0x03  # the last fragment of a command
+    cmd, pos = body[6:], 0
+    while pos < len(cmd):  # Implicit VR Little Endian elements (PS3.7 6.3.1)
+        group, elem, length = struct.unpack_from("<HHL", cmd, pos)
+        if (group, elem) == (0x0000, 0x0900):
+            return struct.unpack_from("<H", cmd, pos + 8)[0]
+        pos += 8 + length
+    raise AssertionError("no Status in the response")
+
+
+def _dribble(sock: socket.socket, data: bytes, rng: random.Random) -> None:
+    """Write ``data`` in pieces of 1 byte to 3 kB, pausing now and then, so that the node's
+    reads end anywhere: inside a PDU header, a PDV header, a command or a data set."""
+    pos = 0
+    while pos < len(data):
+        n = rng.choice([1, 2, 5, 6, 7, 300, 3000])
+        sock.sendall(data[pos:pos + n])
+        pos += n
+        if rng.random() < 0.3:
+            time.sleep(0.002)
+
+
+@pytest.mark.peers
+def test_fast_path_reads_pdus_split_anywhere_and_a_release_behind_the_data(tmp_path):
+    """The association thread reads whatever the socket holds: PDUs cut at any byte are
+    completed by later reads, and an A-RELEASE-RQ that arrives in the same read as the last
+    P-DATA-TF goes to the library with the C-STORE still answered before the A-RELEASE-RP
+    (PS3.8 9.3.5, 9.3.6; the stored data sets byte-identical to those sent)."""
+    dss = series_from_arrays(np.random.default_rng(5).random((SLICES, 8, 8, len(OFFSETS))),
+                             OFFSETS)[:2]
+    rx = Receiver(_cfg(tmp_path), lambda s: None, fast_path=True).start()
+    rng = random.Random(7)
+    try:
+        with socket.create_connection(("127.0.0.1", rx.port), timeout=10) as sock:
+            sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+            sock.sendall(_associate_rq("CESTNODE", "SCANNER1", UID_CLASS,
+                                       str(ExplicitVRLittleEndian)))
+            kind, body = _read_pdu(sock)
+            assert kind == 0x02  # A-ASSOCIATE-AC
+            streams = []
+            for i, ds in enumerate(dss):
+                data = encode(ds, False, True)
+                cmd = fastpath.encode_store_request(i + 1, UID_CLASS, str(ds.SOPInstanceUID))
+                streams.append(b"".join(fastpath.pdata_pdus(1, cmd, data, 1000)))
+            _dribble(sock, streams[0], rng)
+            kind, body = _read_pdu(sock)
+            assert kind == 0x04 and _response_status(body) == 0x0000
+            release_rq = struct.pack(">BBL", 0x05, 0, 4) + bytes(4)
+            sock.sendall(streams[1] + release_rq)  # one write: one read on the node's side
+            kind, body = _read_pdu(sock)
+            assert kind == 0x04 and _response_status(body) == 0x0000  # answered first
+            kind, body = _read_pdu(sock)
+            assert kind == 0x06  # then A-RELEASE-RP
+        assert rx.fast_stores == 2
+        rx.spool.flush()
+        (rec,) = rx.spool.all_series()
+        for ds in dss:
+            stored = rx.spool.path_for(rec.key, ds.SOPInstanceUID).read_bytes()
+            assert _dataset_part(stored)[1] == encode(ds, False, True)  # byte-identical
     finally:
         rx.stop()
 
