@@ -35,7 +35,14 @@ from node.derive import (
     header_only,
     qc_note,
 )
-from node.memory import freeze_startup_objects, limit_blas_threads, reserve_heap, tune_allocator
+from node.memory import (
+    collect_between_series,
+    freeze_startup_objects,
+    limit_blas_threads,
+    reserve_heap,
+    tune_allocator,
+    tune_gc,
+)
 from node.metrics import metrics_for
 from node.outbox import Outbox, OutboxWorker, RetryPolicy
 from node.receive import Receiver
@@ -607,6 +614,7 @@ class Node:
         self.receiver.start()
         self._recovery.start()
         freeze_startup_objects()  # full GC passes skip the start-up objects (node.memory)
+        tune_gc()  # young collections less often, full ones between series (node.memory)
         return self
 
     def stop(self) -> None:
@@ -658,6 +666,11 @@ class Node:
         self._finish(outcome)
         if job is not None:
             self._deferred.put(job)
+        # the series' objects are garbage now, its outputs acknowledged (node.memory)
+        spent = collect_between_series()
+        if spent > 0.05:
+            log.info("series %s: full garbage collection took %.0f ms", outcome.key,
+                     1e3 * spent)
 
     def _defer_recovered(self, series: AssembledSeries, methods: tuple[str, ...]) -> None:
         """A series whose deferred pass a crash interrupted: run that pass again."""

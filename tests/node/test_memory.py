@@ -129,6 +129,42 @@ def test_start_up_objects_are_frozen_once() -> None:
     assert first == "False" and frozen == "0"
 
 
+GC_SCRIPT = textwrap.dedent("""
+    import gc
+    import weakref
+    from node.memory import GC_THRESHOLDS, collect_between_series, tune_gc
+
+    class Node:
+        pass
+
+    before = gc.get_threshold()
+    idle = collect_between_series()
+    first, second = tune_gc(), tune_gc()
+    after = gc.get_threshold()
+    a, b = Node(), Node()
+    a.other, b.other = b, a  # a reference cycle: only the cyclic collector frees it
+    alive = weakref.ref(a)
+    del a, b
+    kept = alive() is not None  # a few allocations since: no automatic collection yet
+    spent = collect_between_series()
+    print(first, second, before == (700, 10, 10), after == GC_THRESHOLDS, idle > 0, kept,
+          alive() is None, spent > 0)
+""")
+
+
+def test_collector_thresholds_and_the_collection_between_series() -> None:
+    # gc.set_threshold / gc.get_threshold / gc.collect (Python docs, gc module); the
+    # interpreter's default thresholds are 700, 10, 10 (CPython 3.11 Modules/gcmodule.c)
+    first, second, default_before, tuned, idle, kept, freed, spent = run_script(
+        GC_SCRIPT, {}).split()
+    assert (first, second) == ("True", "False")  # once per process
+    assert default_before == "True" and tuned == "True"
+    assert idle == "False"  # untuned, the node leaves collecting to the interpreter
+    assert (kept, freed, spent) == ("True", "True", "True")  # the cycle freed between series
+    first, _, _, tuned, *_ = run_script(GC_SCRIPT, {"CEST_NODE_GC": "default"}).split()
+    assert (first, tuned) == ("False", "False")  # left as it is
+
+
 BLAS_SCRIPT = textwrap.dedent("""
     import numpy as np
     from threadpoolctl import threadpool_info
