@@ -138,6 +138,24 @@ def test_parse_dataset_equals_pydicom_reader():
     assert imp.SOPInstanceUID == ds.SOPInstanceUID
 
 
+@pytest.mark.parametrize("charset", ["ISO_IR 100", "ISO_IR 192", "ISO 2022 IR 100"])
+def test_character_sets_decode_as_pydicom_reader(charset):
+    # SpecificCharacterSet (PS3.3 C.12.1.1.2) decides how text decodes; the scanner keeps
+    # pydicom's encodings per raw value, so the second data set of a series is decoded from
+    # the kept ones: both must read as pydicom's own reader reads them, each its own list
+    ds = series_from_arrays(np.ones((1, 4, 4, 2), np.float32), [-300.0, 3.5])[1]
+    ds.SpecificCharacterSet = charset
+    ds.PatientName = "Müller^Jörg"  # the synthetic phantom's invented name, Latin-1 letters
+    ts = str(ExplicitVRLittleEndian)
+    data = encode(ds, False, True)
+    first, second = (fastpath.parse_dataset(data, ts) for _ in range(2))
+    ref = read_dataset(BytesIO(data), False, True)
+    for got in (first, second):
+        assert got.original_character_set == ref.original_character_set
+        assert str(got.PatientName) == str(ref.PatientName) == "Müller^Jörg"
+    assert first.original_character_set is not second.original_character_set
+
+
 def test_scan_dataset_says_when_the_framing_is_known_whole():
     # the receiver skips its own framing walk only for what the fast scanner read to the
     # exact end without a sequence (PS3.5 7.1: defined-length elements, 7.5: sequences)
