@@ -666,7 +666,7 @@ class Node:
         self._finish(outcome)
         if job is not None:
             self._deferred.put(job)
-        # the series' objects are garbage now, its outputs acknowledged (node.memory)
+        # the pass is over, its outputs acknowledged: collect now, off the clock (node.memory)
         spent = collect_between_series()
         if spent > 0.05:
             log.info("series %s: full garbage collection took %.0f ms", outcome.key,
