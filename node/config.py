@@ -338,7 +338,7 @@ class NodeConfig:
     spool_dir, log_dir
         Absolute paths of the spool (instances, SQLite index) and of the latency log.
     fsync
-        fsync each instance and its folder before the success status.
+        make each instance durable (the spool's journal flushed) before the success status.
     idle_timeout_s
         Quiet time after which an unfinished series is released.
     release_grace_s

@@ -3,9 +3,11 @@
 Each instance is written to ``spool_dir/<series_key>/<sop-hash>.dcm`` whole before it gets a
 name there: into an unnamed file (``O_TMPFILE``) then linked in, or, where the file system has
 no unnamed files, through a temporary file in the same folder and ``os.replace`` (atomic on
-POSIX). With ``fsync`` the file's data are flushed (``fdatasync``) before it is named and the
-folder (``fsync``) after, all BEFORE the receiver answers success. Folders are created 0700 and
-files 0600: the spool holds patient data and is for the service user only.
+POSIX). With ``fsync`` the instance is durable BEFORE the receiver answers success: its bytes
+are appended to the spool's journal and the journal flushed, before the file is named
+(:class:`_Journal`; with the journal off, ``CEST_NODE_SPOOL_JOURNAL_MB=0``, the file's data are
+flushed (``fdatasync``) before it is named and its folder (``fsync``) after). Folders are
+created 0700 and files 0600: the spool holds patient data and is for the service user only.
 
 Creating an inode is the dearest step of a write on the node's file systems (about 0.5 ms of
 kernel time here, against 0.03 ms for the write and the link), so a background thread keeps a
@@ -34,13 +36,16 @@ import hashlib
 import logging
 import os
 import sqlite3
+import struct
 import threading
 import time
+import zlib
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
-__all__ = ["BATCH_DELAY_S", "BATCH_ROWS", "SCHEMA_VERSION", "SeriesRecord", "Spool",
-           "SpoolError", "instance_hash"]
+__all__ = ["BATCH_DELAY_S", "BATCH_ROWS", "JOURNAL_IDLE_S", "JOURNAL_MB", "SCHEMA_VERSION",
+           "SeriesRecord", "Spool", "SpoolError", "instance_hash"]
 
 log = logging.getLogger("cest_node.spool")
 
@@ -195,6 +200,296 @@ class _FilePool:
             os.close(fd)  # never named: the kernel frees them
 
 
+# --------------------------------------------------------------------------- journal
+JOURNAL_MB = 256
+"""Largest size of the spool's journal (``CEST_NODE_SPOOL_JOURNAL_MB`` in the environment
+changes it; 0 turns the journal off: every instance is then flushed with its folder)."""
+JOURNAL_IDLE_S = 2.0
+"""Seconds without a new instance after which the spool checkpoints its journal."""
+_JOURNAL_GROW = 1 << 20  # the journal's file grows by this much at a time (posix_fallocate)
+_PAGE = 4096  # records start on page boundaries: a torn write never touches an earlier one
+_JHDR = struct.Struct("<8sQI")  # magic, generation, crc32 of the first two
+_JREC = struct.Struct("<8sQBxxxHHQI")  # magic, generation, kind, key len, stem len, data len, crc
+_JHDR_MAGIC, _JREC_MAGIC = b"CNSPJH01", b"CNSPJR01"
+_FILE, _GONE = 1, 2  # record kinds: an instance file's bytes; an instance removed
+
+
+def _journal_mb() -> int:
+    try:
+        return max(0, int(os.environ.get("CEST_NODE_SPOOL_JOURNAL_MB", JOURNAL_MB)))
+    except ValueError:
+        log.warning("spool: CEST_NODE_SPOOL_JOURNAL_MB is not an integer; using %d", JOURNAL_MB)
+        return JOURNAL_MB
+
+
+def _syncfs(fd: int) -> None:
+    """Flush the whole file system of ``fd`` (Linux ``syncfs(2)``; ``sync`` elsewhere)."""
+    try:
+        import ctypes
+
+        libc = ctypes.CDLL(None, use_errno=True)
+        if libc.syncfs(fd) == 0:
+            return
+    except (OSError, AttributeError):
+        pass
+    os.sync()
+
+
+class _Journal:
+    """Write-ahead copies of the instances, one flush each (``spool_dir/journal.wal``).
+
+    With ``fsync``, the spool's promise (an instance answered with success survives a power
+    cut) costs two flushes the plain way: the file's data, then its folder's new name
+    (``fdatasync`` 330-380 us and ``fsync`` 225-250 us per instance, measured here). With the
+    journal, the instance's bytes are appended to this one file and flushed once before the
+    answer; the instance file itself is written and named without a flush. The file system
+    then writes the instance files back in its own time, and every so often (the spool idle,
+    the journal full, the spool closed) a checkpoint flushes the whole file system
+    (``syncfs``) and starts a new generation: the records before it are no longer needed.
+
+    When the spool is opened, the records of the last generation are replayed first: every
+    instance file they hold is made whole again if it is missing or differs (written
+    atomically, flushed), every instance removed since (a record of kind "gone") is removed
+    again. A record is only taken whole: magic, generation and a CRC-32 of its header and
+    bytes; the first one that is not ends the replay (a write cut short by the power cut,
+    whose instance was never answered).
+
+    Records start on page boundaries, so a write never rewrites the page of an earlier
+    record. The file grows by :data:`_JOURNAL_GROW` (``posix_fallocate``) up to ``max_bytes``;
+    an instance too large for it is flushed the plain way.
+    """
+
+    def __init__(self, root: Path, max_bytes: int):
+        self.root = root
+        self.path = root / "journal.wal"
+        self.max_bytes = max_bytes
+        self._lock = threading.Lock()  # appends, growth and checkpoints
+        self._flush_lock = threading.Lock()
+        # instance records written whose file is not named yet: a checkpoint waits for them
+        # (its file-system flush must cover the name of every record it forgets)
+        self._unnamed = 0
+        self._named = threading.Condition(threading.Lock())
+        self.fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o600)
+        self.generation = 0
+        self.pos = _PAGE
+        self.written = _PAGE  # end of the last record written (under _lock)
+        self.synced = _PAGE  # end of the last record flushed (under _flush_lock)
+        self.size = os.fstat(self.fd).st_size
+        self.last_append = 0.0
+        self.checkpoints = 0
+
+    # ---------------------------------------------------------------- open and replay
+    def replay(self) -> tuple[int, int]:
+        """Apply the last generation's records; returns (files written, files removed)."""
+        head = os.pread(self.fd, _JHDR.size, 0)
+        generation = 0
+        if len(head) == _JHDR.size:
+            magic, gen, crc = _JHDR.unpack(head)
+            if magic == _JHDR_MAGIC and crc == zlib.crc32(head[:16]):
+                generation = gen
+        written = removed = 0
+        if generation:
+            pos = _PAGE
+            while True:
+                rec = self._read_record(pos, generation)
+                if rec is None:
+                    break
+                kind, key, stem, data, end = rec
+                folder = self.root / key
+                final = folder / f"{stem}.dcm"
+                if kind == _FILE:
+                    if not _same_file(final, data):
+                        _mkdir_private(folder)
+                        _write_flushed(final, data)
+                        written += 1
+                else:
+                    try:
+                        final.unlink()
+                        removed += 1
+                    except FileNotFoundError:
+                        pass
+                pos = end
+        if written or removed:
+            log.warning("spool: journal replayed after an unclean stop: %d instance files "
+                        "restored, %d removed again", written, removed)
+        self._start_generation(_next_generation(generation), sync_all=bool(written or removed))
+        return written, removed
+
+    def _read_record(self, pos: int, generation: int
+                     ) -> tuple[int, str, str, bytes, int] | None:
+        if pos + _JREC.size > self.size:
+            return None
+        head = os.pread(self.fd, _JREC.size, pos)
+        if len(head) < _JREC.size:
+            return None
+        magic, gen, kind, klen, slen, dlen, crc = _JREC.unpack(head)
+        if magic != _JREC_MAGIC or gen != generation or kind not in (_FILE, _GONE):
+            return None
+        end = pos + _JREC.size + klen + slen + dlen
+        if end > self.size:
+            return None
+        body = os.pread(self.fd, klen + slen + dlen, pos + _JREC.size)
+        if len(body) < klen + slen + dlen:
+            return None
+        if zlib.crc32(body, zlib.crc32(head[:-4])) != crc:
+            return None
+        try:
+            key = body[:klen].decode("ascii")
+            stem = body[klen:klen + slen].decode("ascii")
+        except UnicodeDecodeError:
+            return None
+        if not _safe_name(key) or not _safe_name(stem):
+            return None
+        return kind, key, stem, body[klen + slen:], _align(end)
+
+    def _start_generation(self, generation: int, *, sync_all: bool) -> None:
+        """Everything before is durable (or is now made so): a new, empty generation."""
+        if sync_all:
+            _syncfs(self.fd)
+        head = _JHDR.pack(_JHDR_MAGIC, generation, 0)[:16]
+        os.pwrite(self.fd, head + struct.pack("<I", zlib.crc32(head)), 0)
+        if self.size < _PAGE:
+            self._grow(_PAGE)
+        os.fsync(self.fd)
+        if not self.generation:
+            _fsync_dir(self.root)  # the journal's own name, once per opening
+        self.generation = generation
+        self.pos = self.written = self.synced = _PAGE
+
+    def _grow(self, end: int) -> None:
+        target = min(self.max_bytes, max(end, self.size + _JOURNAL_GROW))
+        os.posix_fallocate(self.fd, self.size, target - self.size)
+        os.fsync(self.fd)  # the new size and extents, before records rely on them
+        self.size = target
+
+    # ---------------------------------------------------------------- appends
+    def fits(self, n_bytes: int) -> bool:
+        return _PAGE + _align(_JREC.size + 64 + 32 + n_bytes) <= self.max_bytes
+
+    def append(self, kind: int, key: str, stem: str,
+               parts: tuple[bytes | bytearray | memoryview, ...] = ()) -> None:
+        """Write one record and flush it (group commit: a flush that already covers this
+        record is not repeated)."""
+        kb, sb = key.encode("ascii"), stem.encode("ascii")
+        dlen = sum(len(p) for p in parts)
+        with self._lock:
+            need = _align(_JREC.size + len(kb) + len(sb) + dlen)
+            if self.pos + need > self.max_bytes:
+                self._checkpoint_locked()
+            if self.pos + need > self.size:
+                self._grow(self.pos + need)
+            head = _JREC.pack(_JREC_MAGIC, self.generation, kind, len(kb), len(sb), dlen, 0)
+            crc = zlib.crc32(sb, zlib.crc32(kb, zlib.crc32(head[:-4])))
+            for p in parts:
+                crc = zlib.crc32(p, crc)
+            head = head[:-4] + struct.pack("<I", crc)
+            chunks = (head, kb, sb, *parts)
+            total = _JREC.size + len(kb) + len(sb) + dlen
+            n = os.pwritev(self.fd, chunks, self.pos)
+            if n < total:  # a short write: the rest piece by piece
+                view = memoryview(b"".join(chunks))[n:]
+                at = self.pos + n
+                while view:
+                    k = os.pwrite(self.fd, view, at)
+                    view, at = view[k:], at + k
+            self.pos += need
+            self.written = end = self.pos
+            self.last_append = time.monotonic()
+            if kind == _FILE:
+                with self._named:
+                    self._unnamed += 1
+        try:
+            with self._flush_lock:
+                if self.synced < end:
+                    target = self.written
+                    os.fdatasync(self.fd)
+                    self.synced = max(self.synced, target)
+        except BaseException:
+            if kind == _FILE:
+                self.named()
+            raise
+
+    def named(self) -> None:
+        """The file of an instance record :meth:`append` wrote is named now (or never will
+        be: its store failed)."""
+        with self._named:
+            self._unnamed -= 1
+            self._named.notify_all()
+
+    # ---------------------------------------------------------------- checkpoints
+    def _checkpoint_locked(self) -> None:
+        """Flush the file system and start a new generation (caller holds ``_lock``: no
+        record is added meanwhile). Every record's file must be named first."""
+        with self._named:
+            while self._unnamed > 0:
+                self._named.wait()
+        with self._flush_lock:
+            _syncfs(self.fd)  # every instance file written so far, and its name
+            self._start_generation(_next_generation(self.generation), sync_all=False)
+            self.checkpoints += 1
+
+    def checkpoint(self, *, idle_s: float = 0.0) -> bool:
+        """Start a new generation if there is anything to forget and no append came in the
+        last ``idle_s`` seconds; returns whether it did.
+
+        The file system is flushed once without the lock first (stores go on meanwhile; this
+        is the long part), then again under it (what came since: short)."""
+        with self._lock:
+            if self.pos <= _PAGE or time.monotonic() - self.last_append < idle_s:
+                return False
+        _syncfs(self.fd)
+        with self._lock:
+            if self.pos <= _PAGE or time.monotonic() - self.last_append < idle_s:
+                return False
+            self._checkpoint_locked()
+            return True
+
+    def close(self) -> None:
+        try:
+            self.checkpoint()
+        finally:
+            os.close(self.fd)
+
+
+def _next_generation(generation: int) -> int:
+    """A generation above ``generation`` and above any an earlier life of the file could have
+    written (the clock's nanoseconds): old records beyond the new ones never match it, even
+    after a header that could not be read."""
+    return max(generation + 1, time.time_ns())
+
+
+def _align(n: int) -> int:
+    return (n + _PAGE - 1) // _PAGE * _PAGE
+
+
+def _safe_name(name: str) -> bool:
+    """A series key or file stem as the spool makes them (no separator, no dot first)."""
+    return bool(name) and "/" not in name and "\\" not in name and not name.startswith(".")
+
+
+def _same_file(path: Path, data: bytes) -> bool:
+    try:
+        with open(path, "rb") as f:
+            return os.fstat(f.fileno()).st_size == len(data) and f.read() == data
+    except OSError:
+        return False
+
+
+def _write_flushed(final: Path, data: bytes) -> None:
+    """Write ``final`` atomically and durably (temporary name, flush, rename, folder)."""
+    tmp = final.with_name(f".{final.stem}.replay.tmp")
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+    try:
+        view = memoryview(data)
+        while view:
+            view = view[os.write(fd, view):]
+        os.fdatasync(fd)
+    finally:
+        os.close(fd)
+    os.replace(tmp, final)
+    _fsync_dir(final.parent)
+
+
 class Spool:
     """Instances on disk and the series index.
 
@@ -238,6 +533,21 @@ class Spool:
                 self._proc_fd = os.open("/proc/self/fd", os.O_RDONLY | os.O_DIRECTORY)
             except OSError:
                 self._pool.supported = False
+        self._journal: _Journal | None = None
+        mb = _journal_mb() if fsync else 0
+        if mb or (self.root / "journal.wal").exists():  # an earlier life's records first
+            journal = None
+            try:
+                journal = _Journal(self.root, (mb or JOURNAL_MB) << 20)
+                journal.replay()
+            except OSError as exc:
+                log.warning("spool: journal unusable (%s); every instance is flushed with its "
+                            "folder", exc.strerror or exc)
+                mb = 0
+            if journal is not None and not mb:
+                os.close(journal.fd)  # replayed: not used by this spool (no fsync, or off)
+                journal = None
+            self._journal = journal
         self._wake = threading.Condition(threading.Lock())
         self._bg_idle = False
         self._stop = threading.Event()
@@ -363,12 +673,29 @@ class Spool:
                 self._known_dirs.add(series_key)
             if self._thread is None:
                 self.warm()
+            journal = self._journal
+            if journal is not None and not journal.fits(sum(len(p) for p in parts)):
+                journal = None  # too large for the journal: flushed the plain way
+            # with the journal, the bytes are flushed there once, before the file is named
+            journaled: list[_Journal] = []  # the journal, once this instance's record is in
+
+            def note() -> None:
+                assert journal is not None
+                if not journaled:  # one record per instance (a second write path reuses it)
+                    journal.append(_FILE, series_key, stem, parts)
+                    journaled.append(journal)
+
             fd, low = self._pool.take()
             if low:
                 self._nudge()
-            if fd is None or not self._write_unnamed(fd, parts, folder, stem):
-                self._write_named(parts, folder, stem)
-            if self.fsync:
+            try:
+                if fd is None or not self._write_unnamed(
+                        fd, parts, folder, stem, None if journal is None else note):
+                    self._write_named(parts, folder, stem, None if journal is None else note)
+            finally:
+                for j in journaled:
+                    j.named()
+            if self.fsync and journal is None:
                 _fsync_dir(folder)
         except OSError as exc:
             raise SpoolError(f"cannot store instance of series {series_key}: "
@@ -396,25 +723,29 @@ class Spool:
                 self._flush_locked()
         return Path(final)
 
-    def _write_all(self, fd: int, parts: tuple[bytes | bytearray | memoryview, ...]) -> None:
+    def _write_all(self, fd: int, parts: tuple[bytes | bytearray | memoryview, ...],
+                   note: Callable[[], None] | None = None) -> None:
+        """Write the parts; then flush them (``fsync``), or have ``note`` journal them."""
         total = sum(len(p) for p in parts)
         n = os.writev(fd, parts)
         if n < total:  # a short write: finish it piece by piece
             view = memoryview(b"".join(parts))[n:]
             while view:
                 view = view[os.write(fd, view):]
-        if self.fsync:
+        if note is not None:
+            note()
+        elif self.fsync:
             os.fdatasync(fd)
 
     def _write_unnamed(self, fd: int, parts: tuple[bytes | bytearray | memoryview, ...],
-                       folder: str, stem: str) -> bool:
+                       folder: str, stem: str, note: Callable[[], None] | None = None) -> bool:
         """Write into a pool file and link it in as ``folder/stem.dcm``; False: could not
         link (the caller writes a named file instead). The descriptor is closed either way."""
         final = f"{folder}/{stem}.dcm"
         try:
-            self._write_all(fd, parts)
             if self._proc_fd is None:
                 return False
+            self._write_all(fd, parts, note)
             try:
                 os.link(str(fd), final, src_dir_fd=self._proc_fd, follow_symlinks=True)
             except FileExistsError:  # a re-sent instance: replace the first copy atomically
@@ -438,12 +769,12 @@ class Spool:
             os.close(fd)
 
     def _write_named(self, parts: tuple[bytes | bytearray | memoryview, ...], folder: str,
-                     stem: str) -> None:
+                     stem: str, note: Callable[[], None] | None = None) -> None:
         tmp = f"{folder}/.{stem}.{threading.get_ident()}.tmp"
         try:
             fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
             try:
-                self._write_all(fd, parts)
+                self._write_all(fd, parts, note)
             finally:
                 os.close(fd)
             os.replace(tmp, f"{folder}/{stem}.dcm")
@@ -532,6 +863,11 @@ class Spool:
                     log.exception("spool: group commit of the index failed")
                     self._stop.wait(BATCH_DELAY_S)
                 continue
+            if due is None and self._journal is not None:
+                try:  # idle: the instance files flushed, the journal's records forgotten
+                    self._journal.checkpoint(idle_s=JOURNAL_IDLE_S)
+                except OSError as exc:
+                    log.warning("spool: journal checkpoint failed (%s)", exc.strerror or exc)
             with self._wake:
                 if self._stop.is_set():
                     break
@@ -544,6 +880,8 @@ class Spool:
     def discard(self, series_key: str, sop_instance_uid: str) -> None:
         """Remove an instance stored by :meth:`store` that the assembler then refused."""
         path = self.path_for(series_key, sop_instance_uid)
+        if self._journal is not None:  # so that a replay does not bring it back
+            self._journal.append(_GONE, series_key, path.stem)
         path.unlink(missing_ok=True)
         with self._pending_lock:
             self._stems.get(series_key, set()).discard(path.stem)
@@ -634,6 +972,12 @@ class Spool:
                 self._closed = True
                 self._db.close()
                 self._pool.close()
+                if self._journal is not None:
+                    try:  # a clean stop: everything flushed, nothing left to replay
+                        self._journal.close()
+                    except OSError as exc:
+                        log.warning("spool: journal checkpoint at close failed (%s); it is "
+                                    "replayed at the next start", exc.strerror or exc)
                 if self._proc_fd is not None:
                     os.close(self._proc_fd)
                     self._proc_fd = None
