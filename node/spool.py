@@ -265,8 +265,9 @@ class _Journal:
         self.max_bytes = max_bytes
         self._lock = threading.Lock()  # appends, growth and checkpoints
         self._flush_lock = threading.Lock()
-        # instance records written whose file is not named yet: a checkpoint waits for them
-        # (its file-system flush must cover the name of every record it forgets)
+        # records written whose change is not made yet (the file named, or removed): a
+        # checkpoint waits for them (its file-system flush must cover every change whose
+        # record it forgets)
         self._unnamed = 0
         self._named = threading.Condition(threading.Lock())
         self.fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o600)
@@ -395,9 +396,8 @@ class _Journal:
             self.pos += need
             self.written = end = self.pos
             self.last_append = time.monotonic()
-            if kind == _FILE:
-                with self._named:
-                    self._unnamed += 1
+            with self._named:
+                self._unnamed += 1
         try:
             with self._flush_lock:
                 if self.synced < end:
@@ -405,13 +405,13 @@ class _Journal:
                     os.fdatasync(self.fd)
                     self.synced = max(self.synced, target)
         except BaseException:
-            if kind == _FILE:
-                self.named()
+            self.named()
             raise
 
     def named(self) -> None:
-        """The file of an instance record :meth:`append` wrote is named now (or never will
-        be: its store failed)."""
+        """The change of a record :meth:`append` wrote is made now (the instance file named,
+        or removed), or never will be (its store failed). Every successful append is
+        followed by exactly one call."""
         with self._named:
             self._unnamed -= 1
             self._named.notify_all()
@@ -880,9 +880,14 @@ class Spool:
     def discard(self, series_key: str, sop_instance_uid: str) -> None:
         """Remove an instance stored by :meth:`store` that the assembler then refused."""
         path = self.path_for(series_key, sop_instance_uid)
-        if self._journal is not None:  # so that a replay does not bring it back
-            self._journal.append(_GONE, series_key, path.stem)
-        path.unlink(missing_ok=True)
+        journal = self._journal
+        if journal is not None:  # so that a replay does not bring it back
+            journal.append(_GONE, series_key, path.stem)
+        try:
+            path.unlink(missing_ok=True)
+        finally:
+            if journal is not None:
+                journal.named()
         with self._pending_lock:
             self._stems.get(series_key, set()).discard(path.stem)
         with self._lock:
