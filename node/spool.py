@@ -359,7 +359,15 @@ class _Journal:
 
     def _grow(self, end: int) -> None:
         target = min(self.max_bytes, max(end, self.size + _JOURNAL_GROW))
-        os.posix_fallocate(self.fd, self.size, target - self.size)
+        try:
+            os.posix_fallocate(self.fd, self.size, target - self.size)
+        except OSError as exc:
+            if exc.errno not in (errno.EOPNOTSUPP, errno.EINVAL):
+                raise  # out of space: the store that needed it fails (0xA700)
+            zeros = bytes(min(_JOURNAL_GROW, target - self.size))  # no fallocate here
+            at = self.size
+            while at < target:
+                at += os.pwrite(self.fd, zeros[:target - at], at)
         os.fsync(self.fd)  # the new size and extents, before records rely on them
         self.size = target
 

@@ -238,3 +238,22 @@ def test_concurrent_stores_through_checkpoints(tmp_path):
         for i in range(50):
             n = t * 1000 + i
             assert _path(root, n).read_bytes() == b"".join(_instance(n, 34000)), n
+
+
+def test_journal_grows_without_fallocate(tmp_path, monkeypatch):
+    # a file system without fallocate (posix_fallocate(3): EOPNOTSUPP or EINVAL where the
+    # C library does not emulate it): the journal grows by writing zeros instead
+    def no_fallocate(fd, offset, length):
+        raise OSError(95, "Operation not supported")
+
+    monkeypatch.setattr(spool_mod.os, "posix_fallocate", no_fallocate)
+    root = tmp_path / "spool"
+    sp = Spool(root, fsync=True)
+    try:
+        assert sp._journal is not None
+        for i in range(3):
+            sp.store(KEY, f"1.2.3.{i}", _instance(i), protocol="apt")
+        assert (root / "journal.wal").stat().st_size == 1 << 20
+    finally:
+        sp.close()
+    assert _path(root, 2).read_bytes() == b"".join(_instance(2))
