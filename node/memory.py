@@ -62,9 +62,10 @@ _reserved = False
 _libc: list[ctypes.CDLL | None] = []
 
 
-def _glibc() -> ctypes.CDLL | None:
+def glibc() -> ctypes.CDLL | None:
     """The process's C library when it is glibc (loaded once), else None: other C libraries'
-    mallopt parameters differ."""
+    mallopt parameters differ. The allocator settings, the heap reserve and the spool's
+    ``syncfs`` (:mod:`node.spool`) call it."""
     if not _libc:
         lib = None
         name = ctypes.util.find_library("c")
@@ -79,13 +80,14 @@ def _glibc() -> ctypes.CDLL | None:
     return _libc[0]
 
 
-def _env_int(name: str, default: int) -> int:
+def env_int(name: str, default: int) -> int:
     """An integer setting from the environment (``default`` when unset; a warning and
-    ``default`` when it is not an integer)."""
+    ``default`` when it is not an integer). The node's ``CEST_NODE_*_MB`` and thread settings
+    are read with it."""
     try:
         return int(os.environ.get(name, default))
     except ValueError:
-        log.warning("memory: %s is not an integer; using %d", name, default)
+        log.warning("%s is not an integer; using %d", name, default)
         return default
 
 
@@ -97,7 +99,7 @@ def tune_allocator() -> bool:
     _done = False
     if os.environ.get("CEST_NODE_MALLOC", "") == "default":
         return False
-    libc = _glibc()
+    libc = glibc()
     if libc is None:
         return False
     mallopt = libc.mallopt
@@ -126,13 +128,13 @@ def reserve_heap(mb: int | None = None) -> int:
     if _reserved or not tune_allocator():
         return 0
     if mb is None:
-        mb = _env_int("CEST_NODE_HEAP_RESERVE_MB", HEAP_RESERVE_MB)
+        mb = env_int("CEST_NODE_HEAP_RESERVE_MB", HEAP_RESERVE_MB)
     _reserved = True
     if mb <= 0:
         return 0
     # plain malloc and memset, not numpy: numpy advises huge pages for large arrays, and a
     # huge-page fault here costs far more (384 MiB: 1.0 s against 0.19 s in 4 KiB pages)
-    libc = _glibc()
+    libc = glibc()
     assert libc is not None  # tune_allocator() found it
     libc.malloc.argtypes, libc.malloc.restype = [ctypes.c_size_t], ctypes.c_void_p
     libc.free.argtypes, libc.free.restype = [ctypes.c_void_p], None
@@ -247,7 +249,7 @@ def limit_blas_threads() -> bool:
     if _blas_limited is not None:
         return _blas_limited
     _blas_limited = False
-    n = _env_int("CEST_NODE_BLAS_THREADS", BLAS_THREADS)
+    n = env_int("CEST_NODE_BLAS_THREADS", BLAS_THREADS)
     if n <= 0:
         return False
     try:

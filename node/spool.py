@@ -44,6 +44,8 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
+from node.memory import env_int, glibc
+
 __all__ = ["BATCH_DELAY_S", "BATCH_ROWS", "JOURNAL_IDLE_S", "JOURNAL_MB", "SCHEMA_VERSION",
            "SeriesRecord", "Spool", "SpoolError", "instance_hash"]
 
@@ -214,25 +216,11 @@ _JHDR_MAGIC, _JREC_MAGIC = b"CNSPJH01", b"CNSPJR01"
 _FILE, _GONE = 1, 2  # record kinds: an instance file's bytes; an instance removed
 
 
-def _journal_mb() -> int:
-    try:
-        return max(0, int(os.environ.get("CEST_NODE_SPOOL_JOURNAL_MB", JOURNAL_MB)))
-    except ValueError:
-        log.warning("spool: CEST_NODE_SPOOL_JOURNAL_MB is not an integer; using %d", JOURNAL_MB)
-        return JOURNAL_MB
-
-
 def _syncfs(fd: int) -> None:
-    """Flush the whole file system of ``fd`` (Linux ``syncfs(2)``; ``sync`` elsewhere)."""
-    try:
-        import ctypes
-
-        libc = ctypes.CDLL(None, use_errno=True)
-        if libc.syncfs(fd) == 0:
-            return
-    except (OSError, AttributeError):
-        pass
-    os.sync()
+    """Flush the whole file system of ``fd`` (glibc's ``syncfs(2)``; ``sync`` elsewhere)."""
+    libc = glibc()
+    if libc is None or getattr(libc, "syncfs", None) is None or libc.syncfs(fd) != 0:
+        os.sync()
 
 
 class _Journal:
@@ -249,7 +237,7 @@ class _Journal:
 
     When the spool is opened, the records of the last generation are replayed first: every
     instance file they hold is made whole again if it is missing or differs (written
-    atomically, flushed), every instance removed since (a record of kind "gone") is removed
+    atomically; one ``syncfs`` after the replay flushes them all), every instance removed since (a record of kind "gone") is removed
     again. A record is only taken whole: magic, generation and a CRC-32 of its header and
     bytes; the first one that is not ends the replay (a write cut short by the power cut,
     whose instance was never answered).
@@ -301,7 +289,7 @@ class _Journal:
                 if kind == _FILE:
                     if not _same_file(final, data):
                         _mkdir_private(folder)
-                        _write_flushed(final, data)
+                        _write_replaced(final, data)  # flushed by the syncfs below
                         written += 1
                 else:
                     try:
@@ -483,19 +471,18 @@ def _same_file(path: Path, data: bytes) -> bool:
         return False
 
 
-def _write_flushed(final: Path, data: bytes) -> None:
-    """Write ``final`` atomically and durably (temporary name, flush, rename, folder)."""
+def _write_replaced(final: Path, data: bytes) -> None:
+    """Write ``final`` atomically (a temporary name, then a rename); the replay's closing
+    ``syncfs`` makes it durable before the records it came from are forgotten."""
     tmp = final.with_name(f".{final.stem}.replay.tmp")
     fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
     try:
         view = memoryview(data)
         while view:
             view = view[os.write(fd, view):]
-        os.fdatasync(fd)
     finally:
         os.close(fd)
     os.replace(tmp, final)
-    _fsync_dir(final.parent)
 
 
 class Spool:
@@ -542,7 +529,7 @@ class Spool:
             except OSError:
                 self._pool.supported = False
         self._journal: _Journal | None = None
-        mb = _journal_mb() if fsync else 0
+        mb = max(0, env_int("CEST_NODE_SPOOL_JOURNAL_MB", JOURNAL_MB)) if fsync else 0
         if mb or (self.root / "journal.wal").exists():  # an earlier life's records first
             journal = None
             try:

@@ -17,6 +17,7 @@ import struct
 import subprocess
 import sys
 import textwrap
+import time
 from pathlib import Path
 
 import pytest
@@ -153,7 +154,6 @@ def test_idle_checkpoint(tmp_path, monkeypatch):
         for _ in range(100):  # the background thread checkpoints once the spool is idle
             if journal.checkpoints:
                 break
-            import time
             time.sleep(0.05)
         assert journal.checkpoints >= 1 and journal.pos == 4096
     finally:
