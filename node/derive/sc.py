@@ -11,6 +11,7 @@ from __future__ import annotations
 import highdicom as hd
 import numpy as np
 from pydicom import Dataset
+from pydicom.dataelem import DataElement
 from pydicom.dataset import FileMetaDataset
 from pydicom.sequence import Sequence as DicomSequence
 from pydicom.uid import UID
@@ -110,28 +111,43 @@ def build(req: DerivedRequest, *, template: bool = True) -> list[Dataset]:
                                     f"colour-fused over M0. {RESEARCH_STATEMENT}")[:1024]
         sc.SourceImageSequence = DicomSequence([source_image_item(ref)])
         out.append(sc)
-        first = sc
+        if first is None:  # the template stays the first slice's object
+            first = sc
     return out
 
 
 def _like(first: Dataset, rgb: np.ndarray, uid: str, number: int,
           ref: Dataset) -> Dataset | None:
-    """``first`` with another slice's pixels, UIDs, number and source (a shallow copy: the
-    elements it shares with ``first`` are never changed in place); None when the slice's
-    reference is not like the first's (its object is then built in full)."""
+    """``first`` with another slice's pixels, UIDs, number and source; None when the slice's
+    reference is not like the first's (its object is then built in full).
+
+    A shallow copy: a dict of its own holding ``first``'s element objects, and new element
+    objects for what differs. ``Dataset(first)`` would share ``first``'s dict, and setting an
+    attribute that exists changes its element in place, so neither may be used here (every
+    slice would end with the last slice's UID).
+    """
     if (tuple(rgb.shape) != (int(first.Rows), int(first.Columns), 3)
             or patient_orientation(ref) != tuple(first.PatientOrientation)
-            or any(ref.get(kw) != first.get(kw) for kw in _SHARED)):
+            or any(_text(ref.get(kw)) != _text(first.get(kw)) for kw in _SHARED)):
         return None
-    sc = Dataset(first)
-    sc.file_meta = FileMetaDataset(first.file_meta)
-    sc.file_meta.MediaStorageSOPInstanceUID = UID(uid)
-    sc.SOPInstanceUID = uid
-    sc.InstanceNumber = number
     data = np.ascontiguousarray(rgb, dtype=np.uint8).tobytes()  # PlanarConfiguration 0
-    sc.PixelData = data + b"\0" if len(data) % 2 else data  # even length (PS3.5 7.1.1)
-    sc.SourceImageSequence = DicomSequence([source_image_item(ref)])
+    sc = Dataset(dict(first._dict))
+    sc.set_original_encoding(False, True, first.original_character_set)
+    for tag, vr, value in ((0x00080018, "UI", uid), (0x00200013, "IS", number),
+                           (0x00082112, "SQ", DicomSequence([source_image_item(ref)])),
+                           (0x7FE00010, "OB", data + b"\0" if len(data) % 2 else data)):
+        sc[tag] = DataElement(tag, vr, value)  # even length (PS3.5 7.1.1)
+    meta = FileMetaDataset(dict(first.file_meta._dict))
+    meta[0x00020003] = DataElement(0x00020003, "UI", UID(uid))
+    sc.file_meta = meta
     return sc
+
+
+def _text(value: object) -> str:
+    """A shared attribute's value as text: highdicom keeps dates and times as DA/TM objects,
+    which never compare equal to the reference's plain strings (so the template was never
+    used, and every slice cost a full build)."""
+    return "" if value is None else str(value)
 
 
 #: What highdicom copies from the reference image (patient, study): a slice whose reference

@@ -328,6 +328,35 @@ def test_secondary_capture_template_gives_the_objects_highdicom_builds():
     assert len({d.SOPInstanceUID for d in fast}) == len(fast)
 
 
+def test_secondary_capture_template_is_used_for_a_plain_series(monkeypatch):
+    """highdicom builds the first slice only when every slice's reference shares the
+    patient and study attributes: highdicom keeps dates as DA/TM objects, which never equal
+    the reference's strings, and a value-for-value comparison once sent every slice through
+    a full build without any test noticing."""
+    import highdicom as hd
+
+    from node.derive import sc as sc_builder
+
+    req = make_request("secondary_capture")
+    assert len(req.references) > 1
+    calls = []
+    real = hd.sc.SCImage.from_ref_dataset
+
+    def counted(*args, **kwargs):
+        calls.append(1)
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(hd.sc.SCImage, "from_ref_dataset", counted)
+    out = sc_builder.build(req)
+    assert len(calls) == 1 and len(out) == len(req.references)
+    # and a reference of another study still gets a build of its own
+    calls.clear()
+    req.references[1] = req.references[1].copy()
+    req.references[1].StudyDate = "20250101"
+    sc_builder.build(req)
+    assert len(calls) == 2
+
+
 def test_secondary_capture_colours_follow_the_map():
     req = make_request("secondary_capture")
     (ds, *_) = BUILDERS["secondary_capture"](req)
