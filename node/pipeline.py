@@ -253,7 +253,7 @@ def prepare(
         shift_v = given_v
     valid = np.zeros(mask.shape, dtype=bool)
     # as quant.correct_b0 has it: the shift known and the spectrum finite
-    valid.reshape(-1)[index] = np.isfinite(shift_v) & np.all(np.isfinite(zv), axis=-1)
+    valid.reshape(-1)[index] = np.isfinite(shift_v) & quant.finite_rows(zv)
     seconds["b0"] = time.perf_counter() - t1
     b1_outside = None
     if b1_rel is not None:

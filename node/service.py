@@ -52,7 +52,7 @@ from node.send import Sender, SendReport, SendSession, SendSettings
 from node.spool import Spool
 from node.timing import LatencyLog, SeriesClock
 from node.types import AssembledSeries, OutputBatch, uid_from
-from quant import warm_fits
+from quant import warm_b0, warm_fits
 from quant.qc import (
     QcFigures,
     QcReason,
@@ -597,6 +597,9 @@ class Node:
         if self.durable:
             self.outbox.resume()
             self.worker.start()
+        # the B0 estimate's compiled loop (numba), loaded before the first series needs it
+        # (numba's import and the load: about 1 s once per process, 0.05 s after)
+        warm_b0()
         if self.config.metrics.calibrate:
             self.calibration = calibrate_for(self.processor.cost, self.config.protocols)
         if any(p.model_based and any(m in METHODS and not METHODS[m].model_free

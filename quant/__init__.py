@@ -24,7 +24,7 @@ from quant.bmfit import aptr_star  # noqa: F401  (model-based; not registered: n
 from quant.lorentz import lda, multi_lorentzian  # noqa: F401  (registers 'lda', 'multi_lorentzian')
 from quant.measures import apt_star, arex, mtr_asym, mtr_asym_t1, z_at
 from quant.registry import METHODS, PRIMARY_METHOD, MethodInfo, get_method, register
-from quant.spectra import Spectrum, brain_mask, m0_reference, normalize, sort_offsets
+from quant.spectra import Spectrum, brain_mask, finite_rows, m0_reference, normalize, sort_offsets
 
 __all__ = [
     "B0Result",
@@ -38,6 +38,7 @@ __all__ = [
     "brain_mask",
     "correct_b0",
     "estimate_b0_shift",
+    "finite_rows",
     "get_method",
     "lda",
     "m0_reference",
@@ -48,9 +49,19 @@ __all__ = [
     "register",
     "resample_shifted",
     "sort_offsets",
+    "warm_b0",
     "warm_fits",
     "z_at",
 ]
+
+
+def warm_b0() -> None:
+    """Load (or compile, once per checkout) the B0 estimate's compiled loop now (numba;
+    :func:`quant._jit.b0_vertex`): the first series' prepare pays it otherwise (numba's
+    import, about 1 s, and the load)."""
+    from quant import _jit
+
+    _jit.warm_b0()
 
 
 def warm_fits() -> None:

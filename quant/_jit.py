@@ -1,6 +1,7 @@
-"""Compiled inner loops of the batched fits (numba): the Lorentzian model with its normal
-equations, and the bounded Levenberg-Marquardt trial step of every voxel (its damped system
-solved by Cholesky).
+"""Compiled inner loops (numba): of the batched fits, the Lorentzian model with its normal
+equations and the bounded Levenberg-Marquardt trial step of every voxel (its damped system
+solved by Cholesky); of the B0 estimate, the weighted parabola fit around each voxel's
+sampled minimum (:func:`b0_vertex`).
 
 They replace numpy expressions whose cost was their temporaries and per-call overheads, not
 their arithmetic (measured in tests/bench/bench_fits.py): the fused Lorentzian pass wrote
@@ -17,7 +18,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["lm_trial", "lorentz_normal", "predicted_reduction"]
+__all__ = ["b0_vertex", "lm_trial", "lorentz_normal", "predicted_reduction", "rows_finite"]
 
 #: LLVM may reassociate and contract (fused multiply-add) sums, so that it vectorises the dot
 #: products; no assumption that values are finite (NaN and infinity checks stay exact)
@@ -271,6 +272,92 @@ def lm_trial(jtj, grad, g_free, p, lam, dscale, side, frozen, lower, upper, appr
                 side_out[v, k] = 1 if step[k] > 0 else (-1 if step[k] < 0 else 0)
             else:
                 side_out[v, k] = 0
+
+
+@njit(cache=True, nogil=True)
+def b0_vertex(z, cols, xc, window_ppm, out):  # pragma: no cover - compiled
+    """Vertex of the weighted parabola ``y = Z / (1 - Z) = a u^2 + b u + c`` fitted around each
+    row's sampled minimum (:func:`quant.b0.estimate_b0_shift` states the method), into ``out``.
+
+    ``z`` is ``(n, N)``; only its columns ``cols`` (offsets ``xc``, ascending) are read. A row
+    gets NaN where a read value is not finite, where fewer than 3 points lie within
+    ``window_ppm`` of the minimum with Z < 0.95, where the parabola does not open upwards
+    (``a det > 0`` fails, with the normal equations' determinant), or where the vertex lies
+    outside the window. Weights ``(1 - Z)^4``. Sums in float64, row by row: the numpy form
+    made some twenty ``(rows, offsets)`` temporaries per block (147 vs 17 ms for 353,000
+    voxels here).
+    """
+    n = z.shape[0]
+    k = cols.size
+    lim = window_ppm + 1e-6
+    for v in range(n):
+        jmin = -1
+        zmin = np.inf
+        finite = True
+        for j in range(k):
+            val = z[v, cols[j]]
+            if not np.isfinite(val):
+                finite = False
+                break
+            if val < zmin:
+                zmin = val
+                jmin = j
+        if not finite or jmin < 0:
+            out[v] = np.nan
+            continue
+        xmin = xc[jmin]
+        s0 = s1 = s2 = s3 = s4 = t0 = t1 = t2 = 0.0
+        npts = 0
+        for j in range(k):
+            u = xc[j] - xmin
+            val = np.float64(z[v, cols[j]])
+            if abs(u) <= lim and val < 0.95:
+                om = 1.0 - val
+                w = om * om
+                w *= w
+                y = val / om
+                wu = w * u
+                wu2 = wu * u
+                wu3 = wu2 * u
+                s0 += w
+                s1 += wu
+                s2 += wu2
+                s3 += wu3
+                s4 += wu3 * u
+                t0 += w * y
+                t1 += wu * y
+                t2 += wu2 * y
+                npts += 1
+        # normal equations [[s4 s3 s2] [s3 s2 s1] [s2 s1 s0]] [a b c] = [t2 t1 t0], Cramer
+        c00 = s2 * s0 - s1 * s1
+        det = s4 * c00 - s3 * (s3 * s0 - s1 * s2) + s2 * (s3 * s1 - s2 * s2)
+        da = t2 * c00 - s3 * (t1 * s0 - s1 * t0) + s2 * (t1 * s1 - s2 * t0)
+        db = s4 * (t1 * s0 - t0 * s1) - t2 * (s3 * s0 - s1 * s2) + s2 * (s3 * t0 - t1 * s2)
+        if npts < 3 or not (da * det > 0.0):
+            out[v] = np.nan
+            continue
+        vertex = -db / (2.0 * da)  # a = da/det, b = db/det: -b/(2a)
+        out[v] = xmin + vertex if abs(vertex) <= window_ppm else np.nan
+
+
+@njit(cache=True, nogil=True)
+def rows_finite(z, out):  # pragma: no cover - compiled
+    """``out[v]`` = every value of row ``v`` of ``z`` (n, N) is finite (no temporary array)."""
+    for v in range(z.shape[0]):
+        ok = True
+        for j in range(z.shape[1]):
+            if not np.isfinite(z[v, j]):
+                ok = False
+                break
+        out[v] = ok
+
+
+def warm_b0() -> None:
+    """Compile (or load from the on-disk cache) the B0 loops for float32 and float64."""
+    for dt in (np.float32, np.float64):
+        z = np.linspace(0.1, 0.9, 5).astype(dt)[None, :]
+        b0_vertex(z, np.arange(5), np.linspace(-1.0, 1.0, 5), 0.6, np.empty(1, dt))
+        rows_finite(z, np.empty(1, np.bool_))
 
 
 def warm() -> None:

@@ -7,7 +7,8 @@ state (textbook Bloch equations) ``Z = R1 (D^2 + R2^2) / (R1 (D^2 + R2^2) + R2 w
 ``y = a u^2 + b u + c`` (``u = x - x_min``) by weighted linear least squares to the points
 within ``window_ppm`` of it, and report ``x0 = x_min - b / (2a)``. The weights
 ``(1 - Z)^4`` are the inverse variance of ``y`` for a constant noise in ``Z``. The fit is
-closed-form (3 x 3 normal equations by Cramer's rule), vectorised over voxels; it is exact for
+closed-form (3 x 3 normal equations by Cramer's rule), one compiled loop over voxels (sums in
+float64; :func:`quant._jit.b0_vertex`); it is exact for
 one pool, and other pools (MT, NOE, amide) only bend the parabola slightly within +-0.6 ppm.
 A voxel whose fit fails (fewer than 3 points, ``a <= 0``, the vertex outside the window or
 beyond ``max_shift_ppm``) gets NaN.
@@ -89,55 +90,17 @@ def estimate_b0_shift(
         raise ValueError(
             f"offsets_ppm have fewer than 3 points within {max_shift_ppm + window_ppm:g} ppm of water"
         )
-    xc = off[cand].astype(dt)
-    flat = zz.reshape(-1, zz.shape[-1])
+    from quant import _jit  # numba; loaded once (quant.warm_b0 at a node's start)
+
+    flat = np.ascontiguousarray(zz.reshape(-1, zz.shape[-1]))
     shift = np.empty(flat.shape[0], dtype=dt)
-    for r0 in range(0, flat.shape[0], _ROWS):  # row blocks keep the temporaries in cache
-        r1 = min(r0 + _ROWS, flat.shape[0])
-        shift[r0:r1] = _vertex_rows(flat[r0:r1, cand], xc, window_ppm, dt)
+    _jit.b0_vertex(flat, cand.astype(np.intp), off[cand], float(window_ppm), shift)
     with np.errstate(invalid="ignore"):
         shift[~(np.abs(shift) <= max_shift_ppm)] = np.nan
     return shift.reshape(zz.shape[:-1])
 
 
-_ROWS = 2048
-
-
-def _vertex_rows(
-    sub: NDArray[np.floating], xc: NDArray[np.floating], window_ppm: float, dt: np.dtype
-) -> NDArray[np.floating]:
-    """Weighted parabola fit of y = Z/(1-Z) around each row's minimum; the vertex or NaN."""
-    finite = np.isfinite(sub)
-    bad_voxel = ~np.all(finite, axis=-1)
-    jmin = np.argmin(np.where(finite, sub, np.inf), axis=-1)
-    xmin = xc[jmin]
-    u = xc[None, :] - xmin[:, None]
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        one_minus = 1.0 - sub
-        ok = (np.abs(u) <= window_ppm + 1e-6) & (sub < 0.95) & finite
-        w = np.where(ok, one_minus * one_minus, 0).astype(dt, copy=False)
-        w *= w
-        y = np.where(ok, sub / one_minus, 0).astype(dt, copy=False)
-        wu = w * u
-        wu2 = wu * u
-        wu3 = wu2 * u
-        s0 = w.sum(-1)
-        s1 = wu.sum(-1)
-        s2 = wu2.sum(-1)
-        s3 = wu3.sum(-1)
-        s4 = (wu3 * u).sum(-1)
-        t0 = (w * y).sum(-1)
-        t1 = (wu * y).sum(-1)
-        t2 = (wu2 * y).sum(-1)
-        # normal equations [[s4 s3 s2] [s3 s2 s1] [s2 s1 s0]] [a b c] = [t2 t1 t0], Cramer
-        c00 = s2 * s0 - s1 * s1
-        det = s4 * c00 - s3 * (s3 * s0 - s1 * s2) + s2 * (s3 * s1 - s2 * s2)
-        da = t2 * c00 - s3 * (t1 * s0 - s1 * t0) + s2 * (t1 * s1 - s2 * t0)
-        db = s4 * (t1 * s0 - t0 * s1) - t2 * (s3 * s0 - s1 * s2) + s2 * (s3 * t0 - t1 * s2)
-        vertex = -db / (2.0 * da)  # a = da/det, b = db/det: -b/(2a)
-        npts = ok.sum(-1)
-        good = (npts >= 3) & (da * det > 0) & (np.abs(vertex) <= window_ppm) & ~bad_voxel
-        return np.where(good, xmin + vertex, np.nan).astype(dt, copy=False)
+_ROWS = 2048  # row blocks of the resample keep its temporaries in cache
 
 
 @lru_cache(maxsize=16)

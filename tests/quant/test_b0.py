@@ -131,3 +131,47 @@ def test_resample_at_some_columns_is_those_columns_of_the_whole(uniform):
         np.testing.assert_array_equal(f(part, off[cols]), f(whole, off))
     with pytest.raises(ValueError, match="ascending"):
         resample_shifted(z, off, shift, columns=cols[::-1])
+
+
+def test_shift_estimate_is_the_weighted_parabola_numpy_polyfit_gives():
+    # reference library: numpy.polyfit with weights w (it minimises sum (w (y - p(u)))^2, so
+    # w = (1 - Z)^2 gives the estimate's weights (1 - Z)^4), voxel by voxel, on noisy
+    # Lorentzian dips; the vertex of a u^2 + b u + c is -b / (2a) (textbook algebra)
+    rng = np.random.default_rng(3)
+    x = np.round(np.linspace(-1.6, 1.6, 17), 10)
+    n = 400
+    centre = rng.uniform(-0.7, 0.7, n)
+    width = rng.uniform(0.3, 1.2, n)
+    depth = rng.uniform(0.5, 0.97, n)
+    z = 1.0 - depth[:, None] / (1.0 + ((x[None] - centre[:, None]) / width[:, None]) ** 2)
+    z += rng.normal(0.0, 0.01, z.shape)
+    window, max_shift = 0.6, 1.0
+    est = estimate_b0_shift(z, x, window_ppm=window, max_shift_ppm=max_shift)
+    checked = 0
+    for i in range(n):
+        xmin = x[np.argmin(z[i])]
+        u = x - xmin
+        ok = (np.abs(u) <= window + 1e-6) & (z[i] < 0.95)
+        if ok.sum() < 3:
+            assert np.isnan(est[i])
+            continue
+        zi = z[i][ok]
+        a, b, _ = np.polyfit(u[ok], zi / (1.0 - zi), 2, w=(1.0 - zi) ** 2)
+        vertex = -b / (2.0 * a)
+        if a <= 0 or abs(vertex) > window or abs(xmin + vertex) > max_shift:
+            assert np.isnan(est[i]), i
+            continue
+        assert est[i] == pytest.approx(xmin + vertex, abs=1e-9), i
+        checked += 1
+    assert checked > 0.9 * n
+
+
+def test_shift_estimate_gives_nan_for_a_voxel_with_a_non_finite_value_only():
+    x = np.round(np.linspace(-2, 2, 21), 10)
+    z = np.tile(1 - 0.9 / (1 + ((x - 0.2) / 0.4) ** 2), (3, 1)).astype(np.float32)
+    z[1, 10] = np.nan
+    z[2, 0] = np.inf  # outside the +-1.6 ppm the estimate reads: no effect
+    est = estimate_b0_shift(z, x)
+    assert est.dtype == np.float32
+    assert np.isnan(est[1])
+    assert est[0] == pytest.approx(0.2, abs=1e-3) and est[2] == est[0]

@@ -68,3 +68,21 @@ def test_bad_input_names_the_problem():
         normalize(np.array([["a", "b"]]), [1.0, 2.0])
     with pytest.raises(ValueError, match="fraction must be in"):
         brain_mask(np.ones(4), fraction=1.5)
+
+
+def test_finite_rows_is_numpy_all_isfinite():
+    # reference: numpy's np.all(np.isfinite(z), axis=-1), for NaN, +-inf, float32/64, ints
+    from quant.spectra import finite_rows
+
+    rng = np.random.default_rng(5)
+    for dt in (np.float32, np.float64):
+        z = rng.normal(size=(6, 7, 9)).astype(dt)
+        z[0, 1, 3] = np.nan
+        z[2, 2, 0] = np.inf
+        z[5, 6, 8] = -np.inf
+        np.testing.assert_array_equal(finite_rows(z), np.all(np.isfinite(z), axis=-1))
+        np.testing.assert_array_equal(finite_rows(z[:, ::2, 1:]),
+                                      np.all(np.isfinite(z[:, ::2, 1:]), axis=-1))
+    assert finite_rows(np.arange(6).reshape(2, 3)).all()
+    with pytest.raises(ValueError, match="offset axis"):
+        finite_rows(np.float32(1.0))
