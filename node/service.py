@@ -588,6 +588,11 @@ class Node:
     def start(self) -> Node:
         self._stop.clear()
         tune_allocator()  # before the threads and the calibration (node.memory)
+        # the B0 estimate's compiled loop (numba), loaded before the first series needs it
+        # (numba's import and the load: about 1 s once per process), and before the heap
+        # reserve: LLVM's long-lived allocations, made after it, sat inside the reserved
+        # heap and a 40-slice series' arrays were faulted in afresh (normalise 83 -> 385 ms)
+        warm_b0()
         reserve_heap()  # the first series' page faults, paid now (once per process)
         limit_blas_threads()  # one BLAS thread beside the node's own (node.memory)
         self._delivery = ThreadPoolExecutor(max_workers=1, thread_name_prefix="cest-deliver")
@@ -597,9 +602,6 @@ class Node:
         if self.durable:
             self.outbox.resume()
             self.worker.start()
-        # the B0 estimate's compiled loop (numba), loaded before the first series needs it
-        # (numba's import and the load: about 1 s once per process, 0.05 s after)
-        warm_b0()
         if self.config.metrics.calibrate:
             self.calibration = calibrate_for(self.processor.cost, self.config.protocols)
         if any(p.model_based and any(m in METHODS and not METHODS[m].model_free
