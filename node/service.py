@@ -590,8 +590,8 @@ class Node:
         tune_allocator()  # before the threads and the calibration (node.memory)
         # the B0 estimate's compiled loop (numba), loaded before the first series needs it
         # (numba's import and the load: about 1 s once per process), and before the heap
-        # reserve: LLVM's long-lived allocations, made after it, sat inside the reserved
-        # heap and a 40-slice series' arrays were faulted in afresh (normalise 83 -> 385 ms)
+        # reserve, so that numba's and LLVM's long-lived allocations are not placed inside
+        # it (an ordering only: its effect was not measured on its own)
         warm_b0()
         reserve_heap()  # the first series' page faults, paid now (once per process)
         limit_blas_threads()  # one BLAS thread beside the node's own (node.memory)
