@@ -230,10 +230,10 @@ def prepare(
     ref = quant.m0_reference(signal, offsets_ppm, m0=m0, m0_threshold_ppm=m0_threshold_ppm)
     mask = quant.brain_mask(ref)
     index = np.flatnonzero(mask.ravel())
-    # only the brain voxels from here on: one gather, then every stage on (n_voxels, n)
-    rows = signal.reshape(-1, signal.shape[-1])[index]
-    spec = quant.normalize(rows, offsets_ppm, m0=ref.reshape(-1)[index],
-                           m0_threshold_ppm=m0_threshold_ppm)
+    # only the brain voxels from here on, gathered, sorted and normalised in one pass; every
+    # stage after it works on (n_voxels, n)
+    spec = quant.normalize(signal, offsets_ppm, m0=ref, m0_threshold_ppm=m0_threshold_ppm,
+                           voxels=index)
     zv = spec.z
     t1 = time.perf_counter()
     seconds["normalise"] = t1 - t0

@@ -100,6 +100,7 @@ def normalize(
     *,
     m0: ArrayLike | None = None,
     m0_threshold_ppm: float = 20.0,
+    voxels: ArrayLike | None = None,
 ) -> Spectrum:
     """Normalise saturated images by the unsaturated reference: ``Z = S / M0``.
 
@@ -109,6 +110,11 @@ def normalize(
     offsets_ppm : (n_offsets,) offset of each frame; |offset| >= ``m0_threshold_ppm`` marks M0.
     m0 : (...) reference given separately; then M0 frames in ``signal`` are dropped.
     m0_threshold_ppm : where M0 frames begin.
+    voxels : (n_voxels,) flat indices into the voxel axes (``signal.shape[:-1]``): normalise
+        only these voxels; ``z`` is then ``(n_voxels, n_sat)`` and ``m0`` their references,
+        with the values :func:`normalize` of the whole array gives in those voxels (the checks
+        of the reference still cover the whole array). Without repeated offsets this is one
+        compiled pass that writes ``z`` only (:func:`quant._jit.gather_scaled`).
 
     Returns
     -------
@@ -130,11 +136,34 @@ def normalize(
     sig = as_float(signal)
     off, ref = _reference(sig, offsets_ppm, m0, m0_threshold_ppm)
     sat_idx = np.flatnonzero(~(np.abs(off) >= m0_threshold_ppm))
+    if voxels is not None:
+        flat = sig.reshape(-1, sig.shape[-1])
+        vox = np.asarray(voxels)
+        if vox.ndim != 1 or vox.dtype.kind not in "iu":
+            raise ValueError("voxels must be a 1-D array of integer flat indices")
+        if vox.size and (vox.min() < 0 or vox.max() >= flat.shape[0]):
+            raise ValueError(f"voxels holds an index outside 0..{flat.shape[0] - 1}")
+        ref = ref.reshape(-1)[vox]
+        sub = off[sat_idx]
+        order = np.argsort(sub, kind="stable")
+        so = sub[order]
+        if so.size < 2 or np.all(np.diff(so) > 1e-6):
+            from quant import _jit
+
+            z = np.empty((vox.size, so.size), dtype=sig.dtype)
+            _jit.gather_scaled(np.ascontiguousarray(flat), vox.astype(np.intp, copy=False),
+                               sat_idx[order], _inverse(ref, sig.dtype), z)
+            return Spectrum(z=z, offsets_ppm=so, m0=ref)
+        sig = flat[vox]
     z, uo = _sorted(sig, off, sat_idx)
-    with np.errstate(divide="ignore"):
-        inv = np.where(ref > 0, 1.0 / np.where(ref > 0, ref, 1), np.nan).astype(sig.dtype, copy=False)
-    z *= inv[..., None]
+    z *= _inverse(ref, sig.dtype)[..., None]
     return Spectrum(z=z, offsets_ppm=uo, m0=ref)
+
+
+def _inverse(ref: NDArray[np.floating], dtype: np.dtype) -> NDArray[np.floating]:
+    # 1 / M0 in the signal's dtype, NaN where M0 <= 0
+    with np.errstate(divide="ignore"):
+        return np.where(ref > 0, 1.0 / np.where(ref > 0, ref, 1), np.nan).astype(dtype, copy=False)
 
 
 def m0_reference(

@@ -86,3 +86,31 @@ def test_finite_rows_is_numpy_all_isfinite():
     assert finite_rows(np.arange(6).reshape(2, 3)).all()
     with pytest.raises(ValueError, match="offset axis"):
         finite_rows(np.float32(1.0))
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64, np.uint16])
+def test_normalize_of_chosen_voxels_is_the_whole_arrays_rows(dtype):
+    # reference: normalize of the whole array (Z = S / M0 by numpy's own gather, sort and
+    # multiply) at the same voxels, to the bit; with and without repeated offsets (the
+    # compiled pass and the fallback), with M0 from the series and given, with a zero M0
+    rng = np.random.default_rng(11)
+    for offsets in ([-300.0, 3.5, -3.5, 0.0, 1.0, -1.0, 300.0],
+                    [-300.0, 3.5, -3.5, 3.5, 0.0, -300.0]):
+        sig = rng.uniform(5, 900, size=(3, 5, 4, len(offsets))).astype(dtype)
+        sig[1, 2, 3] = 0
+        voxels = np.array([0, 7, 33, 59, 31, 7])  # any order, a voxel twice
+        for m0 in (None, rng.uniform(50, 900, size=(3, 5, 4))):
+            whole = normalize(sig, offsets, m0=m0)
+            part = normalize(sig, offsets, m0=m0, voxels=voxels)
+            want = whole.z.reshape(-1, whole.z.shape[-1])[voxels]
+            assert part.z.dtype == want.dtype and part.z.shape == want.shape
+            np.testing.assert_array_equal(part.z.view(np.uint8), want.view(np.uint8))
+            np.testing.assert_array_equal(part.offsets_ppm, whole.offsets_ppm)
+            np.testing.assert_array_equal(part.m0, whole.m0.reshape(-1)[voxels])
+    assert np.isnan(normalize(sig, offsets, voxels=np.array([31])).z).all()  # voxel (1, 2, 3)
+    empty = normalize(sig, offsets, voxels=np.array([], dtype=np.intp))
+    assert empty.z.shape == (0, 3)
+    with pytest.raises(ValueError, match="outside 0..59"):
+        normalize(sig, offsets, voxels=np.array([60]))
+    with pytest.raises(ValueError, match="integer flat indices"):
+        normalize(sig, offsets, voxels=np.array([0.0]))
