@@ -33,6 +33,10 @@ These are private internals of pynetdicom: :func:`supported` allows only the tes
 range (:data:`SUPPORTED_VERSIONS`, pinned in pyproject.toml as well) and the exact classes the
 subclasses derive from; anywhere else :func:`install` returns False and the library path runs.
 
+On the send side, :func:`store_direct` writes a C-STORE request's PDUs in one call, and
+:func:`install_requestor` puts the same select-waiting DUL on a requestor association (the
+rest of that association stays the library's).
+
 The codecs (:func:`encode_part10_prefix`, :func:`parse_dataset`) are plain DICOM (PS3.5,
 PS3.10) and are checked against pydicom's own encoder and parser in the tests.
 """
@@ -64,10 +68,12 @@ from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian
 __all__ = [
     "SUPPORTED_VERSIONS",
     "StoreRequest",
+    "encode_direct",
     "encode_part10_prefix",
     "encode_store_request",
     "encode_store_response",
     "install",
+    "install_requestor",
     "parse_dataset",
     "parse_store_command",
     "part10_prefix_and_meta",
@@ -821,8 +827,9 @@ def _classes() -> tuple[type, type, type, type]:
                             st.granted.set()
                     if idle:
                         sock = self.socket.socket if self.socket is not None else None
-                        if st.owner != "dul" or st.pending:
-                            sock = None
+                        if (st.owner != "dul" or st.pending
+                                or not getattr(self.socket, "_is_connected", False)):
+                            sock = None  # a requestor's socket before it connects: not yet
                         waits = [st.wake_r] + ([sock] if sock is not None else [])
                         try:
                             ready, _, _ = select.select(waits, [], [], _POLL_S)
@@ -973,7 +980,66 @@ def _classes() -> tuple[type, type, type, type]:
 
 
 # =========================================================================== send side
-def store_direct(assoc: Any, ds: Dataset, msg_id: int) -> Dataset | None:
+def install_requestor(assoc: Any) -> bool:
+    """Put the select-waiting DUL (the receive path's, :func:`install`) on a requestor
+    association before its DUL thread starts, so that a C-STORE response is read as soon as it
+    arrives instead of at the next poll of pynetdicom's sleeping loop (``_run_loop_delay``:
+    5,000 wake-ups a second at the sender's 0.2 ms, each taking the GIL from the threads that
+    build outputs). Only the DUL changes: the association, DIMSE and socket stay the
+    library's, and the DUL always owns the socket.
+
+    Call it from ``AE._create_socket`` (pynetdicom calls it before ``Association.request``
+    starts the DUL). Returns False, leaving the association untouched, when the pynetdicom
+    version or the classes are not the tested ones, the association is not a requestor whose
+    DUL has not started, or a primitive is already queued.
+    """
+    ok, why = supported()
+    if not ok:
+        log.info("fast send wait off: %s", why)
+        return False
+    from pynetdicom.association import Association
+    from pynetdicom.dul import DULServiceProvider
+
+    try:
+        dul = assoc.dul
+        if (type(assoc) is not Association or not assoc.is_requestor
+                or type(dul) is not DULServiceProvider or dul.is_alive()
+                or getattr(dul, "_target", None) != dul.run_reactor
+                or not dul.to_provider_queue.empty()):
+            return False
+    except AttributeError:
+        return False
+    st = _State(_no_store, ())
+    assoc._cest_fast = st
+    dul.to_provider_queue = _WakeQueue(st.wake_dul)
+    dul.__class__ = _classes()[1]
+    dul._target = dul.run_reactor  # bound before the class swap
+    return True
+
+
+def _no_store(assoc: Any, req: StoreRequest) -> tuple[int, str]:  # pragma: no cover
+    # a requestor serves no C-STORE: its DIMSE layer stays the library's
+    return 0xC211, "not an acceptor"
+
+
+def encode_direct(ds: Dataset) -> bytes | None:
+    """The data set bytes :func:`store_direct` would send for ``ds`` (in its file meta's
+    transfer syntax, by the library's own encoder), or None where that path does not apply.
+    The sender encodes the next object with it while the archive is still storing the one
+    before."""
+    from pynetdicom.dsutils import encode  # the library's encoder, as send_c_store uses
+
+    try:
+        ts = str(ds.file_meta.TransferSyntaxUID)
+    except AttributeError:
+        return None
+    if ts not in _LITTLE_ENDIAN_TS:
+        return None
+    return encode(ds, ts == str(ImplicitVRLittleEndian), True)
+
+
+def store_direct(assoc: Any, ds: Dataset, msg_id: int, *, data: bytes | None = None,
+                 then: Callable[[], None] | None = None) -> Dataset | None:
     """``assoc.send_c_store(ds, msg_id=msg_id)`` for a requestor association, with the
     request's PDUs written on the socket in one call; None (nothing sent) where this path
     does not apply and the caller must use the library's.
@@ -995,9 +1061,11 @@ def store_direct(assoc: Any, ds: Dataset, msg_id: int) -> Dataset | None:
     for the DUL, a data set whose file meta names an accepted context's transfer syntax
     (Explicit or Implicit VR Little Endian) for its SOP class, and a message queue that keeps
     responses from the reactor (``node.send.ResponseQueue``: the caller checks).
-    """
-    from pynetdicom.dsutils import encode  # the library's encoder, as send_c_store uses
 
+    ``data``, when given, is ``ds`` already encoded by :func:`encode_direct`; ``then`` is
+    called once the request is on the wire, before the wait for its response (the sender
+    encodes its next object there, while the archive works).
+    """
     dul = getattr(assoc, "dul", None)
     sock_w = getattr(dul, "socket", None)
     sock = getattr(sock_w, "socket", None)
@@ -1018,7 +1086,8 @@ def store_direct(assoc: Any, ds: Dataset, msg_id: int) -> Dataset | None:
                     and str(cx.transfer_syntax[0]) == ts), None)
     if context is None or context.context_id is None:
         return None
-    data = encode(ds, ts == str(ImplicitVRLittleEndian), True)
+    if data is None:
+        data = encode_direct(ds)
     if data is None:
         return None
     command = encode_store_request(msg_id, sop_class, sop_uid)
@@ -1029,6 +1098,8 @@ def store_direct(assoc: Any, ds: Dataset, msg_id: int) -> Dataset | None:
         assoc.abort()  # part of a message may be on the wire: this association is done
         raise
     dul._idle_timer.restart()
+    if then is not None:
+        then()
     _, rsp = assoc.dimse.get_msg(block=True)
     if rsp is None:
         assoc._handle_no_response()

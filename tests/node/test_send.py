@@ -220,6 +220,8 @@ def test_session_carries_several_batches_over_one_association(storescp: StoreSCP
         assert [r.attempts[0].reused for r in reports] == [False, True, True, True]
         assert session.assoc is not None and session.assoc.is_established
         assert session.assoc.dul._run_loop_delay == SendSettings().loop_delay_s
+        # the DUL waits in select for the responses (node.fastpath.install_requestor)
+        assert type(session.assoc.dul).__name__ == "FastDUL"
     assert session.assoc is None  # released on close
     assert all(r.ok and len(r.attempts) == 1 for r in reports)
     sent = {str(d.SOPInstanceUID) for d in [*mr, pm, sc]}
@@ -534,4 +536,40 @@ def test_direct_and_library_paths_store_the_same_objects(tmp_path: Path) -> None
                 meta_end = 132 + 12 + int(ds.file_meta.FileMetaInformationGroupLength)
                 got[direct][str(ds.SOPInstanceUID)] = raw[meta_end:]
     assert set(got[True]) == {str(d.SOPInstanceUID) for d in batch}
+    assert got[True] == got[False]
+
+
+def test_an_object_that_cannot_be_encoded_fails_alone(tmp_path: Path) -> None:
+    """The sender encodes each next object while the archive stores the one before; an object
+    that cannot be encoded still fails as itself ("cannot send"), at its own turn, and the
+    objects around it are stored, byte-identical to the library path's (storescp the peer)."""
+    import copy
+    import warnings
+
+    from pydicom.dataelem import DataElement
+
+    batch = mixed_batch()
+    bad = copy.deepcopy(batch[2])
+    bad.SOPInstanceUID = batch[2].SOPInstanceUID + ".9"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # pydicom warns of the str in a US element
+        bad.add(DataElement(0x00280010, "US", "not a number"))  # Rows
+    batch.insert(3, bad)
+    got: dict[bool, dict[str, bytes]] = {}
+    for direct in (True, False):
+        with StoreSCP(tmp_path / f"scp-{direct}") as scp:
+            report = Sender(fast_settings(direct_send=direct)).send(
+                batch, (scp.ae_title, "127.0.0.1", scp.port))
+            assert [i.index for i in report.items if not i.stored] == [3]
+            assert report.items[3].outcome == FAILED
+            assert report.items[3].detail.startswith("cannot send")
+            assert report.attempts[0].direct == (len(batch) - 1 if direct else 0)
+            files = scp.wait_for(len(batch) - 1)
+            got[direct] = {}
+            for f in files:
+                raw = f.read_bytes()
+                ds = dcmread(f, stop_before_pixels=True)
+                meta_end = 132 + 12 + int(ds.file_meta.FileMetaInformationGroupLength)
+                got[direct][str(ds.SOPInstanceUID)] = raw[meta_end:]
+    assert set(got[True]) == {str(d.SOPInstanceUID) for d in batch} - {str(bad.SOPInstanceUID)}
     assert got[True] == got[False]
