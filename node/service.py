@@ -35,6 +35,7 @@ from node.derive import (
     header_only,
     qc_note,
 )
+from node.derive.render import warm_render
 from node.memory import (
     collect_between_series,
     freeze_startup_objects,
@@ -593,6 +594,7 @@ class Node:
         # reserve, so that numba's and LLVM's long-lived allocations are not placed inside
         # it (an ordering only: its effect was not measured on its own)
         warm_b0()
+        warm_render()  # the Secondary Captures' compiled pixel loop, likewise
         reserve_heap()  # the first series' page faults, paid now (once per process)
         limit_blas_threads()  # one BLAS thread beside the node's own (node.memory)
         self._delivery = ThreadPoolExecutor(max_workers=1, thread_name_prefix="cest-deliver")

@@ -398,6 +398,36 @@ def test_fuse_leaves_invalid_voxels_grey():
     assert rgb[0, 1].tolist() == expect_lo.tolist() and rgb[0, 2].tolist() == expect_hi.tolist()
 
 
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_compiled_fuse_and_upscale_is_the_numpy_reference(dtype):
+    # reference: fuse (numpy) upscaled by np.repeat along both axes, pixel for pixel, every
+    # byte; with NaN and +-inf in the map and in M0, values beyond both ends of the display
+    # range, M0 below its window's low end, and the rest of the canvas untouched
+    from node.derive.render import fuse_upscale
+
+    rng = np.random.default_rng(21)
+    for rows, cols, k, top in ((8, 6, 4, 5), (5, 7, 3, 0), (4, 4, 1, 2)):
+        values = rng.normal(2.0, 3.0, (rows, cols)).astype(dtype)
+        m0 = rng.uniform(-50.0, 1200.0, (rows, cols)).astype(dtype)
+        values.flat[:4] = [np.nan, np.inf, -np.inf, 1e30]
+        m0.flat[-3:] = [np.nan, np.inf, -np.inf]
+        for dr, mr, alpha in (((-1.0, 5.0), (0.0, 1000.0), 0.7), ((0.3, 0.9), (10.0, 90.0), 0.5)):
+            with np.errstate(over="ignore"):  # an infinite M0 overflows to inf, then 255
+                ref = fuse(values, m0, display_range=dr, m0_range=mr, alpha=alpha)
+            want = np.repeat(np.repeat(ref, k, 0), k, 1)
+            canvas = rng.integers(0, 256, (top + rows * k + 3, cols * k + 5, 3), dtype=np.uint8)
+            before = canvas.copy()
+            fuse_upscale(values, m0, canvas, display_range=dr, m0_range=mr, k=k, top=top,
+                         alpha=alpha)
+            np.testing.assert_array_equal(canvas[top:top + rows * k, :cols * k], want)
+            outside = np.ones(canvas.shape[:2], bool)
+            outside[top:top + rows * k, :cols * k] = False
+            np.testing.assert_array_equal(canvas[outside], before[outside])
+    with pytest.raises(ValueError, match="fuse_upscale"):
+        fuse_upscale(values, m0, np.zeros((3, 3, 3), np.uint8), display_range=(0.0, 1.0),
+                     m0_range=(0.0, 1.0), k=2)
+
+
 def test_banner_text_is_the_required_sentence():
     assert RESEARCH_BANNER == "RESEARCH USE ONLY \u2014 NOT FOR DIAGNOSIS"
 
