@@ -76,16 +76,24 @@ def sort_offsets(
     return _sorted(sig, off, np.arange(off.size))
 
 
+def _sort_plan(
+    off: NDArray[np.float64], idx: NDArray[np.intp]
+) -> tuple[NDArray[np.intp], NDArray[np.float64], NDArray[np.intp]]:
+    # frames idx in offset order (stable): their columns, sorted offsets, and where each run
+    # of repeats (offsets closer than 1e-6 ppm) starts
+    sub = off[idx]
+    order = np.argsort(sub, kind="stable")
+    so = sub[order]
+    starts = np.flatnonzero(np.concatenate([[True], np.diff(so) > 1e-6]))
+    return idx[order], so, starts
+
+
 def _sorted(
     sig: NDArray[np.floating], off: NDArray[np.float64], idx: NDArray[np.intp]
 ) -> tuple[NDArray[np.floating], NDArray[np.float64]]:
     # frames idx of sig, sorted by offset, repeats averaged; one gather
-    sub = off[idx]
-    order = np.argsort(sub, kind="stable")
-    so = sub[order]
-    new = np.concatenate([[True], np.diff(so) > 1e-6])
-    starts = np.flatnonzero(new)
-    taken = np.take(sig, idx[order], axis=-1)
+    cols, so, starts = _sort_plan(off, idx)
+    taken = np.take(sig, cols, axis=-1)
     if starts.size == so.size:
         return taken, so
     counts = np.diff(np.append(starts, so.size))
@@ -144,15 +152,13 @@ def normalize(
         if vox.size and (vox.min() < 0 or vox.max() >= flat.shape[0]):
             raise ValueError(f"voxels holds an index outside 0..{flat.shape[0] - 1}")
         ref = ref.reshape(-1)[vox]
-        sub = off[sat_idx]
-        order = np.argsort(sub, kind="stable")
-        so = sub[order]
-        if so.size < 2 or np.all(np.diff(so) > 1e-6):
+        cols, so, starts = _sort_plan(off, sat_idx)
+        if starts.size == so.size:  # no repeats: one compiled pass
             from quant import _jit
 
             z = np.empty((vox.size, so.size), dtype=sig.dtype)
             _jit.gather_scaled(np.ascontiguousarray(flat), vox.astype(np.intp, copy=False),
-                               sat_idx[order], _inverse(ref, sig.dtype), z)
+                               cols, _inverse(ref, sig.dtype), z)
             return Spectrum(z=z, offsets_ppm=so, m0=ref)
         sig = flat[vox]
     z, uo = _sorted(sig, off, sat_idx)

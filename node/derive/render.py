@@ -81,15 +81,18 @@ def fuse(values: np.ndarray, m0: np.ndarray, *, display_range: tuple[float, floa
 def _fuse_upscale(values, m0, lo, s_val, g_lo, s_grey, keep, alpha, lut, k, out, top):  # pragma: no cover - compiled
     """:func:`fuse` of one slice written into rows ``top ..`` and columns ``0 .. cols k`` of
     ``out`` (the whole canvas, C-contiguous uint8 ``(height, width, 3)``), each voxel a
-    ``k x k`` block: the first row of each block pixel by pixel, the others copied from it. The same operations in the same dtypes as
-    the numpy expression (the constants come in the arrays' dtypes, float32 for the blend, no
-    fastmath), so every pixel is the numpy one; in one call, holding the GIL: the numpy form
-    was some fifteen array operations a slice, each of which let another thread take the
-    interpreter."""
+    ``k x k`` block: the first row of each block pixel by pixel, the others copied from it.
+
+    The same operations in the same dtypes as the numpy expression (the constants come in the
+    arrays' dtypes, float32 for the blend, no fastmath), so every pixel is the numpy one; in
+    one call, holding the GIL: the numpy form was some fifteen array operations a slice, each
+    of which let another thread take the interpreter."""
     rows, cols = values.shape
     fmax = np.finfo(m0.dtype).max
     flat = out.reshape(out.shape[0], out.shape[1] * 3)
+    n = cols * k * 3
     for r in range(rows):
+        y = top + r * k
         for c in range(cols):
             g = m0[r, c]
             if np.isnan(g):
@@ -111,14 +114,11 @@ def _fuse_upscale(values, m0, lo, s_val, g_lo, s_grey, keep, alpha, lut, k, out,
             else:
                 red = grn = blu = np.rint(g3)
             rr, gg, bb = np.uint8(red), np.uint8(grn), np.uint8(blu)
-            y = top + r * k
             for b in range(k):
                 xo = c * k + b
                 out[y, xo, 0] = rr
                 out[y, xo, 1] = gg
                 out[y, xo, 2] = bb
-        y = top + r * k
-        n = cols * k * 3
         for a in range(1, k):
             for j in range(n):
                 flat[y + a, j] = flat[y, j]

@@ -517,6 +517,18 @@ def _pdus_of(primitive):  # type: ignore[no-untyped-def]
     return [pdu.encode()]
 
 
+def stored_data_sets(files: list[Path]) -> dict[str, bytes]:
+    """SOP Instance UID -> the data set bytes of each stored file, after its file meta
+    (preamble, "DICM", the group length element, then the group: PS3.10 7.1)."""
+    out: dict[str, bytes] = {}
+    for f in files:
+        raw = f.read_bytes()
+        ds = dcmread(f, stop_before_pixels=True)
+        meta_end = 132 + 12 + int(ds.file_meta.FileMetaInformationGroupLength)
+        out[str(ds.SOPInstanceUID)] = raw[meta_end:]
+    return out
+
+
 def test_direct_and_library_paths_store_the_same_objects(tmp_path: Path) -> None:
     """The same batch through the direct path and through pynetdicom's send_c_store, each to
     its own storescp: every object arrives, and the stored data sets are byte-identical."""
@@ -529,12 +541,7 @@ def test_direct_and_library_paths_store_the_same_objects(tmp_path: Path) -> None
             assert report.ok, report.items
             assert report.attempts[0].direct == (len(batch) if direct else 0)
             files = scp.wait_for(len(batch))
-            got[direct] = {}
-            for f in files:
-                raw = f.read_bytes()
-                ds = dcmread(f, stop_before_pixels=True)
-                meta_end = 132 + 12 + int(ds.file_meta.FileMetaInformationGroupLength)
-                got[direct][str(ds.SOPInstanceUID)] = raw[meta_end:]
+            got[direct] = stored_data_sets(files)
     assert set(got[True]) == {str(d.SOPInstanceUID) for d in batch}
     assert got[True] == got[False]
 
@@ -565,11 +572,6 @@ def test_an_object_that_cannot_be_encoded_fails_alone(tmp_path: Path) -> None:
             assert report.items[3].detail.startswith("cannot send")
             assert report.attempts[0].direct == (len(batch) - 1 if direct else 0)
             files = scp.wait_for(len(batch) - 1)
-            got[direct] = {}
-            for f in files:
-                raw = f.read_bytes()
-                ds = dcmread(f, stop_before_pixels=True)
-                meta_end = 132 + 12 + int(ds.file_meta.FileMetaInformationGroupLength)
-                got[direct][str(ds.SOPInstanceUID)] = raw[meta_end:]
+            got[direct] = stored_data_sets(files)
     assert set(got[True]) == {str(d.SOPInstanceUID) for d in batch} - {str(bad.SOPInstanceUID)}
     assert got[True] == got[False]
