@@ -56,6 +56,8 @@ from dataclasses import dataclass
 from io import BytesIO
 from typing import Any
 
+import numpy as np
+from numba import njit
 from pydicom import Dataset
 from pydicom import config as pydicom_config
 from pydicom.charset import convert_encodings, default_encoding
@@ -82,6 +84,7 @@ __all__ = [
     "store_direct",
     "supported",
     "tag_key",
+    "warm_scan",
 ]
 
 log = logging.getLogger("cest_node.fastpath")
@@ -308,6 +311,83 @@ def _empty_raw(vr: str) -> Any:
     return value
 
 
+_VR_LIST = sorted(_ENCODED_VR)  # the walk's VR codes: index into this list
+_VR_NAMES = [_VR_TEXT[v] for v in _VR_LIST]
+_VR_CODE = np.full(65536, -1, np.int16)  # the VR's two bytes (little-endian u16) -> code
+for _i, _v in enumerate(_VR_LIST):
+    _VR_CODE[_v[0] | _v[1] << 8] = _i
+_VR_LONG = np.array([v in _LONG_VR for v in _VR_LIST])
+_VR_SQ = _VR_LIST.index(b"SQ")
+_WALK_MAX = 1024  # elements the compiled walk lists; a data set with more: the Python scan
+
+
+@njit(cache=True, nogil=True)
+def _walk_explicit_le(buf: np.ndarray, vr_code: np.ndarray, vr_long: np.ndarray,
+                      out: np.ndarray) -> int:  # pragma: no cover - compiled (tested)
+    """The top-level elements of an Explicit VR Little Endian data set (PS3.5 7.1.2: tag,
+    two-letter VR, a 2-byte length, or 2 reserved bytes and a 4-byte length for the long
+    VRs): rows of (tag number, VR code, value offset, value length) into ``out``; returns
+    their count, or -1 when the data set is not simple (see :func:`_scan_explicit_le`) or
+    has more elements than ``out`` has rows."""
+    pos, end, n = 0, buf.shape[0], 0
+    while pos < end:
+        if end - pos < 8 or n >= out.shape[0]:
+            return -1
+        group = np.int64(buf[pos]) | np.int64(buf[pos + 1]) << 8
+        code = vr_code[np.int64(buf[pos + 4]) | np.int64(buf[pos + 5]) << 8]
+        if code < 0 or group == 0xFFFE:
+            return -1
+        length = np.int64(buf[pos + 6]) | np.int64(buf[pos + 7]) << 8
+        out[n, 0] = group << 16 | np.int64(buf[pos + 2]) | np.int64(buf[pos + 3]) << 8
+        pos += 8
+        if vr_long[code]:
+            if end - pos < 4:
+                return -1
+            length = (np.int64(buf[pos]) | np.int64(buf[pos + 1]) << 8
+                      | np.int64(buf[pos + 2]) << 16 | np.int64(buf[pos + 3]) << 24)
+            pos += 4
+        if length == 0xFFFFFFFF or pos + length > end:
+            return -1
+        out[n, 1] = code
+        out[n, 2] = pos
+        out[n, 3] = length
+        n += 1
+        pos += length
+    return n
+
+
+def _scan_compiled(data: bytes) -> tuple[dict[BaseTag, RawDataElement] | None, bool]:
+    """:func:`_scan_explicit_le`, with the walk over the element headers compiled (the same
+    elements and result; tested against it): about a third less time for an instance of 65
+    elements here. A data set with more than :data:`_WALK_MAX` elements, or that the walk
+    finds not simple, is scanned by :func:`_scan_explicit_le`."""
+    rows = np.empty((min(_WALK_MAX, len(data) // 8 + 1), 4), np.int64)
+    n = _walk_explicit_le(np.frombuffer(data, np.uint8), _VR_CODE, _VR_LONG, rows)
+    if n < 0:
+        return _scan_explicit_le(data)
+    out: dict[BaseTag, RawDataElement] = {}
+    tags, names, new, cls = _TAGS, _VR_NAMES, _RAW_NEW, RawDataElement
+    is_raw, is_buffered = _RAW_DEFAULTS
+    has_sq = False
+    for number, code, pos, length in rows[:n].tolist():
+        tag = tags.get(number)
+        if tag is None:
+            tag = BaseTag(number)
+            if len(tags) < 4096:
+                tags[number] = tag
+        vr = names[code]
+        has_sq = has_sq or code == _VR_SQ
+        out[tag] = new(cls, (tag, vr, length, data[pos:pos + length] if length
+                             else _empty_raw(vr), pos, False, True, is_raw, is_buffered))
+    return out, has_sq
+
+
+def warm_scan() -> None:
+    """Compile (or load from the on-disk cache) the scanner's walk, before the first C-STORE
+    needs it (about a second for numba's first compile, once per machine)."""
+    _scan_compiled(b"\x08\x00\x18\x00UI\x02\x001\x00")
+
+
 def _scan_explicit_le(data: bytes) -> tuple[dict[BaseTag, RawDataElement] | None, bool]:
     """(raw elements of an Explicit VR Little Endian data set, whether one is a sequence), or
     (None, False) when the data set is not simple.
@@ -358,7 +438,7 @@ def scan_dataset(data: bytes | bytearray | memoryview, transfer_syntax_uid: str
     the fast scanner read every element to the exact end and none is a sequence (the caller
     must still check the framing of anything else; pydicom decodes truncation silently)."""
     implicit = str(transfer_syntax_uid) == str(ImplicitVRLittleEndian)
-    raw, has_sq = (None, False) if implicit else _scan_explicit_le(
+    raw, has_sq = (None, False) if implicit else _scan_compiled(
         data if isinstance(data, bytes) else bytes(data))
     if raw is None:
         return read_dataset(BytesIO(data), implicit, True), False

@@ -276,6 +276,7 @@ class Receiver:
         ]
         self.assembler.start()
         self.spool.warm()
+        fastpath.warm_scan()  # the data set scanner's compiled walk, before the first C-STORE
         self._server = ae.start_server((self.config.host, self.config.port), block=False,
                                        evt_handlers=handlers, ssl_context=ssl_context)
         self.port = int(self._server.server_address[1])

@@ -174,6 +174,46 @@ def test_scan_dataset_says_when_the_framing_is_known_whole():
     assert got.ReferencedImageSequence[0].ReferencedSOPInstanceUID == UID_INST
 
 
+def _walked(data: bytes) -> int:
+    rows = np.empty((fastpath._WALK_MAX, 4), np.int64)
+    return int(fastpath._walk_explicit_le(np.frombuffer(data, np.uint8), fastpath._VR_CODE,
+                                          fastpath._VR_LONG, rows))
+
+
+def test_compiled_scan_equals_the_python_scan(monkeypatch):
+    # Explicit VR Little Endian element headers (PS3.5 7.1.2): tag, VR, 2-byte length, or 2
+    # reserved bytes and a 4-byte length for OB/OD/OF/OL/OV/OW/SQ/UC/UN/UR/UT/SV/UV; the
+    # compiled walk must give what the Python scanner gives, element for element, for every
+    # data set, simple or not, whole or cut anywhere
+    ds = series_from_arrays(np.ones((1, 4, 4, 2), np.float32), [-300.0, 3.5])[1]
+    ds.add_new(0x00091010, "LO", "")  # a zero-length value: pydicom's empty raw value
+    ds.add_new(0x00091011, "UT", "x" * 70000)  # a long VR whose length needs the 4th byte
+    ds.add_new(0x00091012, "OB", b"")  # a long VR, empty
+    plain = encode(ds, False, True)
+    assert _walked(plain) == len(ds)
+    ref = fastpath._scan_explicit_le(plain)
+    assert fastpath._scan_compiled(plain) == ref and ref[0] is not None and not ref[1]
+    for cut in [*range(0, 600), *range(len(plain) - 80, len(plain) + 1)]:
+        part = plain[:cut]
+        assert fastpath._scan_compiled(part) == fastpath._scan_explicit_le(part), cut
+    assert _walked(plain[:-3]) == -1  # a cut value is not simple
+    bad_vr = plain[:4] + b"ZZ" + plain[6:]
+    assert _walked(bad_vr) == -1 and fastpath._scan_compiled(bad_vr) == (None, False)
+    item = struct.pack("<HHL", 0xFFFE, 0xE000, 0) + plain  # an item at the top level
+    assert fastpath._scan_compiled(item) == (None, False)
+    # a sequence of defined length (PS3.5 7.5.1) with one item of defined length: kept raw,
+    # flagged as a sequence, by both
+    uid = struct.pack("<HH2sH", 0x0008, 0x1155, b"UI", 4) + b"1.2\x00"
+    item = struct.pack("<HHL", 0xFFFE, 0xE000, len(uid)) + uid
+    sq = struct.pack("<HH2sHL", 0x0008, 0x1140, b"SQ", 0, len(item)) + item + plain
+    assert _walked(sq) == len(ds) + 1
+    got = fastpath._scan_compiled(sq)
+    assert got == fastpath._scan_explicit_le(sq) and got[1]
+    # more elements than the walk lists: the Python scanner's result, the same
+    monkeypatch.setattr(fastpath, "_WALK_MAX", 8)
+    assert fastpath._scan_compiled(plain) == ref
+
+
 def test_prefix_and_meta_equal_the_prefix_read_back():
     for ts in (ExplicitVRLittleEndian, ImplicitVRLittleEndian):
         kw = {"implementation_class_uid": PYNETDICOM_IMPLEMENTATION_UID,
