@@ -46,7 +46,7 @@ from pydicom.tag import Tag
 
 from node.companion import CompanionFrame, CompanionSeries, CompanionStore, attach, to_physical
 from node.config import CompanionRule, NodeConfig, OffsetRule, Protocol
-from node.fastpath import tag_key
+from node.fastpath import new_dataset, tag_key
 from node.types import AssembledSeries, series_key
 
 __all__ = [
@@ -518,7 +518,7 @@ def _header_only(ds: Dataset) -> Dataset:
     """A shallow copy of ``ds`` without Pixel Data (elements shared, not re-parsed)."""
     elems = dict(ds._dict)
     elems.pop(_PIXEL_DATA, None)
-    hdr = Dataset(elems)
+    hdr = new_dataset(elems)
     if hasattr(ds, "file_meta"):
         hdr.file_meta = ds.file_meta
     implicit, little = ds.original_encoding

@@ -214,6 +214,23 @@ def test_compiled_scan_equals_the_python_scan(monkeypatch):
     assert fastpath._scan_compiled(plain) == ref
 
 
+def test_new_dataset_is_a_dataset_like_pydicoms_own():
+    # the receive path's Dataset without __init__ (fastpath.new_dataset) against pydicom's
+    # constructor: the same attributes and values, the elements the given dict itself, and
+    # no container shared between two data sets
+    raw = fastpath._scan_explicit_le(encode(
+        series_from_arrays(np.ones((1, 4, 4, 2), np.float32), [-300.0, 3.5])[1], False, True))[0]
+    assert raw is not None
+    ours, ref, other = fastpath.new_dataset(raw), Dataset(raw), fastpath.new_dataset({})
+    assert type(ours) is Dataset and ours.__dict__ == ref.__dict__ and ours._dict is raw
+    for k, v in ours.__dict__.items():
+        if isinstance(v, dict | list | set) and k != "_dict":
+            assert v is not other.__dict__[k] and v is not fastpath._DS_STATE[k], k
+    assert ours.SOPInstanceUID == ref.SOPInstanceUID and ours.Rows == ref.Rows
+    ours.private_block(0x0029, "CESTNODE SIM 1")
+    assert not other._private_blocks  # a private block read in one, not in the other
+
+
 def test_prefix_and_meta_equal_the_prefix_read_back():
     for ts in (ExplicitVRLittleEndian, ImplicitVRLittleEndian):
         kw = {"implementation_class_uid": PYNETDICOM_IMPLEMENTATION_UID,
