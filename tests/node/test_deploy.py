@@ -182,6 +182,53 @@ def test_unit_is_hardened_as_documented() -> None:
     assert option_value(argv, "--log-dir") == "/var/log/cest-node"
 
 
+def _unit_env() -> dict[str, str]:
+    env: dict[str, str] = {}
+    for value in unit_values("Service", "Environment"):
+        env.update(kv.split("=", 1) for kv in shlex.split(value))
+    return env
+
+
+def test_compiled_loops_import_read_only_with_the_deploy_cache_dir(tmp_path: Path) -> None:
+    # numba's on-disk cache (cache=True) needs a writable folder: the package's own, or the
+    # user's home (numba.core.caching, from memory: no locator -> RuntimeError at import).
+    # The unit runs read-only (ProtectSystem=strict, ProtectHome, DynamicUser) and the image
+    # with --read-only, so both name one in their writable state folder; checked for real in
+    # a mount namespace with this checkout read-only and the home inside it
+    cache = _unit_env().get("NUMBA_CACHE_DIR", "")
+    image_env = " ".join(i.args for i in containerfile() if i.name == "ENV")
+    assert f"NUMBA_CACHE_DIR={cache}" in image_env
+    state = "/var/lib/" + unit_value("Service", "StateDirectory")
+    assert Path(state) in Path(cache).parents
+    assert any(Path(v) in Path(cache).parents for v in only(containerfile(), "VOLUME").json_args())
+    unshare = shutil.which("unshare")
+    if unshare is None or os.geteuid() != 0:
+        pytest.skip("needs root and unshare (util-linux) for a read-only mount namespace")
+    probe = subprocess.run([unshare, "-m", "true"], capture_output=True, timeout=30)
+    if probe.returncode != 0:
+        pytest.skip(f"no mount namespace here: {probe.stderr.decode()[:200]}")
+    code = ("import node.service; from quant import warm_b0; "
+            "from node.derive.render import warm_render; from node.fastpath import warm_scan; "
+            "warm_b0(); warm_render(); warm_scan(); print('imported')")  # as Node.start does
+    stand_in = tmp_path / "numba-cache"  # the state folder's numba-cache, here
+    script = (f"mount --bind {shlex.quote(str(ROOT))} {shlex.quote(str(ROOT))} && "
+              f"mount -o remount,ro,bind {shlex.quote(str(ROOT))} && "
+              f"cd {shlex.quote(str(ROOT))} && "
+              f"{shlex.quote(sys.executable)} -c {shlex.quote(code)}")
+    home = str(ROOT / "no-home")  # inside the read-only tree: not writable either
+    base = {k: v for k, v in os.environ.items()
+            if k not in ("NUMBA_CACHE_DIR", "XDG_CACHE_HOME")} | {"HOME": home}
+    without = subprocess.run([unshare, "-m", "sh", "-c", script], capture_output=True,
+                             text=True, timeout=300, env=base)
+    assert without.returncode != 0 and "no locator available" in without.stderr, (
+        "the check's premise: without a cache folder the import fails", without.stderr[-500:])
+    with_dir = subprocess.run([unshare, "-m", "sh", "-c", script], capture_output=True,
+                              text=True, timeout=300,
+                              env=base | {"NUMBA_CACHE_DIR": str(stand_in)})
+    assert with_dir.returncode == 0 and "imported" in with_dir.stdout, with_dir.stderr[-2000:]
+    assert any(stand_in.rglob("*.nbi")), "numba wrote its cache index there"
+
+
 def _systemd_analyze() -> str:
     exe = shutil.which("systemd-analyze")
     if exe is None:
