@@ -20,6 +20,11 @@ swapping the classes of the association's own objects for subclasses defined her
   handed to the association thread as a :class:`StoreRequest`. EVERYTHING ELSE (C-ECHO, any
   other command, a command the parser does not understand) is replayed into pynetdicom's own
   DIMSE decoder, fragment for fragment, and served by the library as usual;
+- once the association is established (Sta6), the association thread reads the socket
+  itself: each read takes whatever the socket holds into a buffer (a command and its data
+  set usually come in one read), P-DATA-TF PDUs are cut from it, and any other PDU, with
+  every byte read after it, is handed back to the DUL, which reads the socket from then on.
+  The reactor's checks (release, abort, timers) run once per message, not once per PDU;
 - the association thread waits on an Event set by the message and ACSE queues instead of
   sleeping, calls the store function directly (no event objects), and answers with a
   C-STORE-RSP command set encoded here (:func:`encode_store_response`, byte-identical to the
@@ -94,6 +99,7 @@ SUPPORTED_VERSIONS = ("3.0.",)
 """pynetdicom version prefixes whose internals this module was written and tested against."""
 
 _POLL_S = 0.02  # longest wait of either loop: bounds the reaction to anything not woken
+_RECV_BUFFER = 1 << 19  # bytes: a read takes up to this much (a PDU beyond it grows it)
 _LITTLE_ENDIAN_TS = (str(ExplicitVRLittleEndian), str(ImplicitVRLittleEndian))
 
 
@@ -630,6 +636,9 @@ class _State:
         self.granted = threading.Event()
         self.pending = bytearray()
         self.send_lock = threading.Lock()
+        # the association thread's receive buffer: bytes read, rbuf[rlo:rhi] not yet taken
+        self.rbuf = bytearray(_RECV_BUFFER)
+        self.rlo = self.rhi = 0
 
     def wake_dul(self) -> None:
         try:
@@ -758,11 +767,13 @@ def _classes() -> tuple[type, type, type, type]:
                         self.abort()
                     self.kill()
                     return
-                if msg is None:
-                    if st.owner == "assoc":
+                if st.owner == "assoc":
+                    # after a served message too, unless another is queued: one pass of
+                    # this loop (and of its checks) per instance, not one per PDU
+                    if msg is None or self.dimse.msg_queue.empty():
                         self._cest_read()
-                    else:
-                        st.ready.wait(_POLL_S)
+                elif msg is None:
+                    st.ready.wait(_POLL_S)
 
         def _cest_give_back(self, data: bytes | bytearray = b"") -> None:
             """Hand the socket (and any bytes read from it) back to the DUL for good."""
@@ -771,63 +782,97 @@ def _classes() -> tuple[type, type, type, type]:
             st.owner = "dul"
             st.wake_dul()
 
-        def _cest_recv(self, sock: Any, n: int) -> bytearray:
-            buf = bytearray(n)
-            view = memoryview(buf)
-            got = 0
-            try:
-                while got < n:
-                    k = sock.recv_into(view[got:], n - got)
+        def _cest_fill(self, sock: Any, need: int) -> int:
+            """Read until the receive buffer holds ``need`` bytes past its read position.
+
+            Returns 1 when it does, 0 when nothing more came within :data:`_POLL_S` (the
+            bytes read so far stay buffered for the next call), -1 when the peer closed the
+            connection or the socket failed. Each read takes whatever the socket holds, up
+            to the buffer's end (a command and its data set often come in one read); the
+            socket is waited on only when a read finds nothing.
+            """
+            st: _State = self._cest_fast
+            if st.rlo == st.rhi:
+                st.rlo = st.rhi = 0
+            if st.rlo + need > len(st.rbuf):  # make room: the unread rest to the front
+                rest = st.rbuf[st.rlo:st.rhi]
+                if need > len(st.rbuf):
+                    st.rbuf = bytearray(max(need, 2 * len(st.rbuf)))
+                st.rbuf[:len(rest)] = rest
+                st.rlo, st.rhi = 0, len(rest)
+            with memoryview(st.rbuf) as view:
+                while st.rhi - st.rlo < need:
+                    try:
+                        k = sock.recv_into(view[st.rhi:], 0, socket.MSG_DONTWAIT)
+                    except BlockingIOError:
+                        try:
+                            ready, _, _ = select.select([sock], [], [], _POLL_S)
+                        except (OSError, ValueError):
+                            return -1
+                        if not ready:
+                            return 0
+                        continue
+                    except OSError:
+                        return -1
                     if not k:
-                        break
-                    got += k
-            except OSError:
-                pass
-            finally:
-                view.release()
-            del buf[got:]
-            return buf
+                        return -1
+                    st.rhi += k
+            return 1
 
         def _cest_read(self) -> None:
-            """Wait for one PDU and take it if it is a P-DATA-TF in Sta6; else give back."""
+            """Take P-DATA-TF PDUs (Sta6) until one completes a message or none is waiting.
+
+            Anything else (another PDU type, a malformed P-DATA-TF, the end of the
+            connection) is handed back to the DUL with every byte buffered after it, and the
+            DUL reads the socket from then on.
+            """
+            st: _State = self._cest_fast
             sock = self.dul.socket.socket if self.dul.socket is not None else None
             if sock is None or self.dul.state_machine.current_state != "Sta6":
-                self._cest_give_back()
+                self._cest_give_back(st.rbuf[st.rlo:st.rhi])
+                st.rlo = st.rhi = 0
                 return
-            try:
-                ready, _, _ = select.select([sock], [], [], _POLL_S)
-            except (OSError, ValueError):
-                self._cest_give_back()
-                return
-            if not ready:
-                return
-            head = self._cest_recv(sock, 6)
-            if len(head) < 6 or head[0] != 0x04:
-                if len(head) == 6:
-                    head += self._cest_recv(sock, struct.unpack_from(">L", head, 2)[0])
-                self._cest_give_back(head)
-                return
-            length = struct.unpack_from(">L", head, 2)[0]
-            body = bytes(self._cest_recv(sock, length))
-            if len(body) < length:
-                self._cest_give_back(head + body)
-                return
-            self.dul._idle_timer.restart()
-            pdvs: list[tuple[int, bytes]] = []
-            pos = 0
-            while pos < length:  # PDV items (PS3.8 9.3.5.1): length, context ID, value
-                if length - pos < 6:
-                    self._cest_give_back(head + body)
+            while not self._kill:
+                got = self._cest_fill(sock, 6)
+                if got > 0 and st.rbuf[st.rlo] != 0x04:
+                    got = -1  # not a P-DATA-TF: the DUL reads it
+                if got > 0:
+                    length = struct.unpack_from(">L", st.rbuf, st.rlo + 2)[0]
+                    got = self._cest_fill(sock, 6 + length)
+                    if got > 0:
+                        pdvs = self._cest_pdvs(st.rbuf, st.rlo + 6, st.rlo + 6 + length)
+                        if pdvs is None:
+                            got = -1  # malformed: the library reports it
+                        else:
+                            st.rlo += 6 + length
+                            self.dul._idle_timer.restart()
+                            if self.dimse._cest_take(st, pdvs):
+                                return  # a C-STORE is queued: the reactor serves it
+                            continue
+                if got == 0:
                     return
-                item = struct.unpack_from(">L", body, pos)[0]
-                if item < 2 or pos + 4 + item > length:
-                    self._cest_give_back(head + body)
-                    return
-                pdvs.append((body[pos + 4], body[pos + 5:pos + 4 + item]))
-                pos += 4 + item
-            prim = P_DATA()
-            prim.presentation_data_value_list.extend(pdvs)
-            self.dimse.receive_primitive(prim)
+                self._cest_give_back(st.rbuf[st.rlo:st.rhi])
+                st.rlo = st.rhi = 0
+                return
+
+        @staticmethod
+        def _cest_pdvs(buf: bytearray, pos: int, end: int
+                       ) -> list[tuple[int, int, bytes]] | None:
+            """The PDV items of a P-DATA-TF body (PS3.8 9.3.5.1: 4-byte length, context ID,
+            message control header, fragment) as (context ID, header, fragment); None when
+            an item does not fit the PDU."""
+            pdvs: list[tuple[int, int, bytes]] = []
+            with memoryview(buf) as view:
+                while pos < end:
+                    if end - pos < 6:
+                        return None
+                    item = struct.unpack_from(">L", buf, pos)[0]
+                    if item < 2 or pos + 4 + item > end:
+                        return None
+                    pdvs.append((buf[pos + 4], buf[pos + 5],
+                                 bytes(view[pos + 6:pos + 4 + item])))
+                    pos += 4 + item
+            return pdvs
 
         def _cest_send(self, pdu: bytes) -> bool:
             """Send an encoded PDU now, unless the DUL has something queued before it."""
@@ -994,14 +1039,22 @@ def _classes() -> tuple[type, type, type, type]:
             super().receive_primitive(one)
 
         def receive_primitive(self, primitive: Any) -> None:
-            st: _State = self.assoc._cest_fast
-            for context_id, pdv in primitive.presentation_data_value_list:
+            """A P-DATA primitive from the DUL (before the association thread reads the
+            socket itself, or after it gave it back)."""
+            self._cest_take(self.assoc._cest_fast,
+                            [(cx, pdv[0], pdv[1:])
+                             for cx, pdv in primitive.presentation_data_value_list])
+
+        def _cest_take(self, st: _State, pdvs: list[tuple[int, int, bytes]]) -> bool:
+            """PDVs as (context ID, message control header, fragment) (PS3.8 E.2); True when
+            they completed a C-STORE of ours, now on the message queue."""
+            queued = False
+            for context_id, flags, fragment in pdvs:
                 if st.mode == "lib":
-                    self._cest_to_library(context_id, pdv)
+                    self._cest_to_library(context_id, bytes((flags,)) + fragment)
                     if self.message is None:
                         st.mode = "idle"
                     continue
-                flags = pdv[0]
                 if st.mode == "data":
                     if flags & 1 or st.req is None or context_id != st.req[0]:
                         # a command (or another context) in the middle of our data set: give
@@ -1009,19 +1062,21 @@ def _classes() -> tuple[type, type, type, type]:
                         log.warning("C-STORE data set interrupted by another PDV; passing the "
                                     "message to pynetdicom")
                         self._cest_fallback(st)
-                        self._cest_to_library(context_id, pdv)
+                        self._cest_to_library(context_id, bytes((flags,)) + fragment)
                         if self.message is None:
                             st.mode = "idle"
                         continue
-                    st.parts.append(pdv[1:])
+                    st.parts.append(fragment)
                     if flags & 2:
                         cx, mid, cls, inst, ts = st.req
-                        data = b"".join(st.parts)
+                        data = st.parts[0] if len(st.parts) == 1 else b"".join(st.parts)
                         st.mode, st.parts, st.req, st.cmd = "idle", [], None, []
                         st.fast_count += 1
                         self.msg_queue.put((cx, StoreRequest(cx, mid, cls, inst, ts, data)))
+                        queued = True
                     continue
                 # idle: a message begins (or continues with command fragments)
+                pdv = bytes((flags,)) + fragment
                 if not flags & 1:
                     self._cest_to_library(context_id, pdv)
                     st.mode = "idle" if self.message is None else "lib"
@@ -1038,6 +1093,7 @@ def _classes() -> tuple[type, type, type, type]:
                     st.mode = "data"
                     continue
                 self._cest_fallback(st)
+            return queued
 
         def _cest_fallback(self, st: _State) -> None:
             """Replay what was buffered for the current message into the library."""

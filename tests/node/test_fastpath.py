@@ -432,6 +432,53 @@ def test_fast_path_reads_pdus_split_anywhere_and_a_release_behind_the_data(tmp_p
         rx.stop()
 
 
+@pytest.mark.peers
+def test_fast_path_reads_a_pdu_beyond_its_buffer_and_many_pdus_in_one_read(tmp_path):
+    """The association thread reads as much as the socket holds: a P-DATA-TF larger than its
+    read buffer (no Maximum Length: the PS3.8 D.1 value 0), a PDU holding both the command
+    and the data set (two PDV items, PS3.8 9.3.5.1), and many small PDUs that arrive in one
+    read are each taken whole, answered in order, and stored byte-identical."""
+    big = series_from_arrays(np.random.default_rng(8).random((1, 512, 640, len(OFFSETS))),
+                             OFFSETS, seed="big")[0]
+    small = series_from_arrays(np.random.default_rng(9).random((SLICES, 8, 8, len(OFFSETS))),
+                               OFFSETS)[:2]
+    rx = Receiver(_cfg(tmp_path, max_pdu=0), lambda s: None, fast_path=True).start()
+    try:
+        with socket.create_connection(("127.0.0.1", rx.port), timeout=10) as sock:
+            sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+            sock.sendall(_associate_rq("CESTNODE", "SCANNER1", UID_CLASS,
+                                       str(ExplicitVRLittleEndian)))
+            kind, _ = _read_pdu(sock)
+            assert kind == 0x02  # A-ASSOCIATE-AC
+            sent = [big, *small]
+            data = [encode(ds, False, True) for ds in sent]
+            cmds = [fastpath.encode_store_request(i + 1, UID_CLASS, str(ds.SOPInstanceUID))
+                    for i, ds in enumerate(sent)]
+            assert len(data[0]) > fastpath._RECV_BUFFER  # the premise: beyond the buffer
+            stream = b"".join(fastpath.pdata_pdus(1, cmds[0], data[0], 0))  # one data PDU
+            both = (struct.pack(">LBB", len(cmds[1]) + 2, 1, 0x03) + cmds[1]
+                    + struct.pack(">LBB", len(data[1]) + 2, 1, 0x02) + data[1])
+            stream += struct.pack(">BBL", 0x04, 0, len(both)) + both
+            stream += b"".join(fastpath.pdata_pdus(1, cmds[2], data[2], 64))  # 64-byte PDUs
+            sock.sendall(stream)
+            for _ in sent:
+                kind, body = _read_pdu(sock)
+                assert kind == 0x04 and _response_status(body) == 0x0000
+            sock.sendall(struct.pack(">BBL", 0x05, 0, 4) + bytes(4))  # A-RELEASE-RQ
+            kind, _ = _read_pdu(sock)
+            assert kind == 0x06  # A-RELEASE-RP
+        assert rx.fast_stores == 3
+        rx.spool.flush()
+        stored = {}
+        for rec in rx.spool.all_series():
+            for path in rx.spool.instance_paths(rec.key):
+                stored[dcmread(path).SOPInstanceUID] = path.read_bytes()
+        for ds, raw in zip(sent, data, strict=True):
+            assert _dataset_part(stored[ds.SOPInstanceUID])[1] == raw  # byte-identical
+    finally:
+        rx.stop()
+
+
 # --------------------------------------------------------------------------- library path
 @pytest.fixture
 def node(tmp_path):
