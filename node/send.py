@@ -270,6 +270,9 @@ class AttemptReport:
     """The association was a :class:`SendSession`'s, opened by an earlier batch."""
     direct: int = 0
     """Objects sent by the direct path (:attr:`SendSettings.direct_send`)."""
+    fast_responses: int = 0
+    """C-STORE responses the association decoded itself (:func:`node.fastpath.install_requestor`),
+    counted over the association's life so far (a kept association carries its count)."""
 
 
 @dataclass
@@ -390,8 +393,10 @@ def _validate(datasets: Sequence[Dataset]) -> None:
 class _Ledger:
     """C-STORE responses decoded on one association, by Message ID Being Responded To.
 
-    Filled from ``EVT_DIMSE_RECV`` in the DUL thread, which sees every decoded message before
-    it is queued, so a response the reactor thread took off the queue is still known here.
+    Filled from ``EVT_DIMSE_RECV`` in the DUL thread, which sees every message the library
+    decodes before it is queued, and from :meth:`record` for those the fast send path decodes
+    (also in the DUL thread, before the queue), so a response the reactor thread took off
+    the queue is still known here.
     """
 
     def __init__(self) -> None:
@@ -408,6 +413,12 @@ class _Ledger:
         if msg_id is not None and status is not None:
             with self._lock:
                 self._status[int(msg_id)] = int(status)
+
+    def record(self, msg_id: int, status: int) -> None:
+        """A response decoded by the fast send path (:func:`node.fastpath.on_store_response`),
+        which does not trigger ``EVT_DIMSE_RECV``."""
+        with self._lock:
+            self._status[int(msg_id)] = int(status)
 
     def status(self, msg_id: int) -> int | None:
         with self._lock:
@@ -715,6 +726,7 @@ class Sender:
                 event.assoc.dul._run_loop_delay = self.settings.loop_delay_s
             if self.settings.guard_reactor_race:
                 guard_reactor_race(event)
+            fastpath.on_store_response(event.assoc, ledger.record)  # where it decodes them
 
         handlers: list[Any] = [
             (evt.EVT_CONN_OPEN, on_conn_open),
@@ -850,6 +862,8 @@ class Sender:
                         still.append(i)
             return attempt, still, permanent
         finally:
+            attempt.fast_responses = int(getattr(getattr(assoc, "_cest_fast", None),
+                                                 "fast_count", 0))
             keep = (session is not None and assoc.is_established and not still
                     and not attempt.error)
             if keep:

@@ -24,7 +24,7 @@ from pydicom.filereader import read_dataset
 from pydicom.sequence import Sequence
 from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian, MRImageStorage
 from pynetdicom import AE, PYNETDICOM_IMPLEMENTATION_UID, PYNETDICOM_IMPLEMENTATION_VERSION
-from pynetdicom.dimse_messages import C_ECHO_RQ, C_STORE_RQ, C_STORE_RSP
+from pynetdicom.dimse_messages import C_ECHO_RQ, C_ECHO_RSP, C_STORE_RQ, C_STORE_RSP
 from pynetdicom.dimse_primitives import C_ECHO, C_STORE
 from pynetdicom.dsutils import create_file_meta, encode, encode_file_meta
 from pynetdicom.sop_class import Verification  # type: ignore[attr-defined]
@@ -86,6 +86,40 @@ def test_store_command_parse_matches_the_library_request():
     assert fastpath.parse_store_command(cmd[:-3]) is None
     assert fastpath.parse_store_command(cmd + b"\x00\x00\x01\x09\x02\x00\x00\x00\x01\x00") is None
     assert fastpath.parse_store_command(b"") is None
+
+
+@pytest.mark.parametrize(("status", "comment", "instance"), [
+    (0x0000, "", UID_INST), (0xB000, "coerced", UID_INST), (0xA700, " out of space  ", ""),
+    (0xC001, "x" * 64, UID_INST)])
+def test_store_response_parse_gives_the_library_primitive(status, comment, instance):
+    # reference: pynetdicom's own encoder and decoder of a C-STORE-RSP (PS3.7 9.3.1.2): the
+    # fast send path's primitive has the fields the library's decoder gives for the same bytes
+    rsp = C_STORE()
+    rsp.MessageIDBeingRespondedTo = 65535
+    rsp.AffectedSOPClassUID = UID_CLASS
+    if instance:
+        rsp.AffectedSOPInstanceUID = instance
+    rsp.Status = status
+    if comment:
+        rsp.ErrorComment = comment
+    cmd = _library_command(rsp, C_STORE_RSP)
+    msg = C_STORE_RSP()
+    msg.command_set = read_dataset(BytesIO(cmd), True, True)
+    lib = msg.message_to_primitive()
+    mid, st, cls, inst, text = fastpath.parse_store_response(cmd)  # type: ignore[misc]
+    assert (mid, st) == (lib.MessageIDBeingRespondedTo, lib.Status) == (65535, status)
+    assert cls == lib.AffectedSOPClassUID and inst == (lib.AffectedSOPInstanceUID or "")
+    assert text == (lib.ErrorComment or "")
+    # anything else is the library's: a request, another response, more elements, cut short
+    assert fastpath.parse_store_response(cmd[:-3]) is None
+    echo = C_ECHO()
+    echo.MessageIDBeingRespondedTo = 1
+    echo.AffectedSOPClassUID = Verification
+    echo.Status = 0
+    assert fastpath.parse_store_response(_library_command(echo, C_ECHO_RSP)) is None
+    error_id = struct.pack("<HHLH", 0x0000, 0x0903, 2, 7)  # (0000,0903) Error ID: not read here
+    assert fastpath.parse_store_response(cmd + error_id) is None
+    assert fastpath.parse_store_response(b"") is None
 
 
 def test_part10_prefix_is_what_pydicom_writes():

@@ -398,6 +398,7 @@ def test_warning_and_failure_statuses_are_reported() -> None:
     assert "does not match SOP class" in report.items[1].detail
     assert report.items[2].outcome == FAILED and report.items[2].status == 0xA900
     assert report.items[2].attempts == 1 and len(report.attempts) == 1
+    assert report.attempts[0].fast_responses == len(batch)  # decoded without the library
 
 
 @pytest.mark.peers
@@ -540,6 +541,9 @@ def test_direct_and_library_paths_store_the_same_objects(tmp_path: Path) -> None
                 batch, (scp.ae_title, "127.0.0.1", scp.port))
             assert report.ok, report.items
             assert report.attempts[0].direct == (len(batch) if direct else 0)
+            # with the fast wait (on with the direct path) the responses are decoded by its
+            # DIMSE layer, as the library's C_STORE primitives (fastpath.install_requestor)
+            assert report.attempts[0].fast_responses == (len(batch) if direct else 0)
             files = scp.wait_for(len(batch))
             got[direct] = stored_data_sets(files)
     assert set(got[True]) == {str(d.SOPInstanceUID) for d in batch}
