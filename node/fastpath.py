@@ -72,6 +72,8 @@ from pydicom.filereader import read_dataset
 from pydicom.tag import BaseTag
 from pydicom.uid import ExplicitVRLittleEndian, ImplicitVRLittleEndian
 
+from node import encoder
+
 __all__ = [
     "SUPPORTED_VERSIONS",
     "StoreRequest",
@@ -1255,9 +1257,14 @@ def _no_store(assoc: Any, req: StoreRequest) -> tuple[int, str]:  # pragma: no c
 
 def encode_direct(ds: Dataset) -> bytes | None:
     """The data set bytes :func:`store_direct` would send for ``ds`` (in its file meta's
-    transfer syntax, by the library's own encoder), or None where that path does not apply.
-    The sender encodes the next object with it while the archive is still storing the one
-    before."""
+    transfer syntax), or None where that path does not apply or the data set cannot be
+    encoded. The sender encodes the next object with it while the archive is still storing
+    the one before.
+
+    The bytes are those of the library's own encoder (``pynetdicom.dsutils.encode``, as
+    ``send_c_store`` uses), written by :func:`node.encoder.encode`, which keeps the encoding
+    of elements that repeat between objects; where that raises, the library's encoder runs
+    (and logs and gives None where it fails too)."""
     from pynetdicom.dsutils import encode  # the library's encoder, as send_c_store uses
 
     try:
@@ -1266,7 +1273,11 @@ def encode_direct(ds: Dataset) -> bytes | None:
         return None
     if ts not in _LITTLE_ENDIAN_TS:
         return None
-    return encode(ds, ts == str(ImplicitVRLittleEndian), True)
+    implicit = ts == str(ImplicitVRLittleEndian)
+    try:
+        return encoder.encode(ds, implicit)
+    except Exception:  # noqa: BLE001 - the library's encoder decides, and reports
+        return encode(ds, implicit, True)
 
 
 def store_direct(assoc: Any, ds: Dataset, msg_id: int, *, data: bytes | None = None,
