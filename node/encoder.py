@@ -69,12 +69,20 @@ def encode(ds: Dataset, implicit_vr: bool) -> bytes:
     return fp.getvalue()
 
 
-def _write_dataset(fp: DicomBytesIO, dataset: Dataset, parent_encoding: Any) -> None:
-    """``pydicom.filewriter.write_dataset`` (pydicom 3.0) with a fixed little-endian ``fp``."""
+def _write_dataset(fp: DicomBytesIO, dataset: Dataset, parent_encoding: Any,
+                   corrected: bool = False) -> None:
+    """``pydicom.filewriter.write_dataset`` (pydicom 3.0) with a fixed little-endian ``fp``.
+
+    ``corrected``: an enclosing data set's ``correct_ambiguous_vr`` has been through this one
+    (it walks every nested item), so its second pass here, which pydicom makes and which can
+    find nothing left to resolve, is not made again.
+    """
     get_item: Any = dataset.get_item
     if ((fp.is_implicit_VR, True) != dataset.original_encoding
             or dataset.original_character_set != dataset._character_set):
-        dataset = correct_ambiguous_vr(dataset, True)
+        if not corrected:
+            dataset = correct_ambiguous_vr(dataset, True)
+            corrected = True
         get_item = dataset.__getitem__
     encoding = dataset.get("SpecificCharacterSet", parent_encoding)
     enc_key = tuple(encoding) if isinstance(encoding, list | tuple | MultiValue) else encoding
@@ -87,7 +95,7 @@ def _write_dataset(fp: DicomBytesIO, dataset: Dataset, parent_encoding: Any) -> 
             write_data_element(fp, elem, encoding)
             continue
         if elem.VR == "SQ":
-            _write_sequence(fp, elem, encoding)
+            _write_sequence(fp, elem, encoding, corrected)
             continue
         value = elem.value
         if (type(value) is bytes and len(value) > _BYTES_MAX and elem.VR in _BULK_VR
@@ -110,7 +118,8 @@ def _write_dataset(fp: DicomBytesIO, dataset: Dataset, parent_encoding: Any) -> 
         fp.write(data)
 
 
-def _write_sequence(fp: DicomBytesIO, elem: DataElement, encoding: Any) -> None:
+def _write_sequence(fp: DicomBytesIO, elem: DataElement, encoding: Any,
+                    corrected: bool) -> None:
     """A sequence element as ``write_data_element`` writes one (PS3.5 7.5): its items encoded
     here (``write_sequence_item``: defined item lengths unless an item asks for undefined),
     then the element's header, with an undefined length when the element has one."""
@@ -125,7 +134,7 @@ def _write_sequence(fp: DicomBytesIO, elem: DataElement, encoding: Any) -> None:
             inner = DicomBytesIO()
             inner.is_implicit_VR = fp.is_implicit_VR
             inner.is_little_endian = True
-            _write_dataset(inner, item, encodings)
+            _write_dataset(inner, item, encodings, corrected)
             content = inner.getvalue()
             body.write(_ITEM)
             if getattr(item, "is_undefined_length_sequence_item", False):
