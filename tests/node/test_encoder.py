@@ -122,7 +122,12 @@ def test_ambiguous_vr_is_resolved_as_pydicom_resolves_it():
     ds.add_new(0x00280106, "US or SS", -3)
     ds2 = _base(PixelRepresentation=0, BitsAllocated=16, BitsStored=16, HighBit=15)
     ds2.add_new(0x00280106, "US or SS", 3)
-    _same_as_library([ds, ds2])
+    # nested: an item's ambiguous element resolved by its parent's PixelRepresentation
+    item = Dataset()
+    item.add_new(0x00280107, "US or SS", -2)  # Largest Image Pixel Value
+    ds3 = _base(PixelRepresentation=1, BitsAllocated=16, BitsStored=16, HighBit=15)
+    ds3.add_new(0x00089124, "SQ", Sequence([item]))  # Derivation Image Sequence
+    _same_as_library([ds, ds2, ds3])
 
 
 def test_the_direct_send_path_encodes_with_it():
