@@ -104,6 +104,7 @@ SUPPORTED_VERSIONS = ("3.0.",)
 
 _POLL_S = 0.02  # longest wait of either loop: bounds the reaction to anything not woken
 _RECV_BUFFER = 1 << 19  # bytes: a read takes up to this much (a PDU beyond it grows it)
+_UNLIMITED_READ = 1 << 28  # bytes: the longest PDU buffered whole when we announce no limit
 _LITTLE_ENDIAN_TS = (str(ExplicitVRLittleEndian), str(ImplicitVRLittleEndian))
 
 
@@ -670,6 +671,9 @@ class _State:
         # the association thread's receive buffer: bytes read, rbuf[rlo:rhi] not yet taken
         self.rbuf = bytearray(_RECV_BUFFER)
         self.rlo = self.rhi = 0
+        # the longest PDU the association thread buffers whole: the Maximum Length we
+        # announced (set at install), else a bound; a longer one is the library's to read
+        self.max_read = _UNLIMITED_READ
         # a requestor's: called with (message ID, status) of each C-STORE-RSP it decodes
         self.on_response: Callable[[int, int], None] | None = None
 
@@ -721,6 +725,9 @@ def install(assoc: Any, store: StoreFunction, *, abstract_syntaxes: Collection[s
     except AttributeError:
         return False
     st = _State(store, abstract_syntaxes)
+    announced = int(getattr(assoc.ae, "maximum_pdu_size", 0) or 0)  # our Maximum Length
+    if announced:
+        st.max_read = announced
     assoc._cest_fast = st
     assoc.dimse.msg_queue = _WakeQueue(st.ready.set)
     assoc.dul.to_user_queue = _WakeQueue(st.ready.set)
@@ -871,6 +878,9 @@ def _classes() -> tuple[type, type, type, type, type]:
                     got = -1  # not a P-DATA-TF: the DUL reads it
                 if got > 0:
                     length = struct.unpack_from(">L", st.rbuf, st.rlo + 2)[0]
+                    if length > st.max_read:
+                        got = -1  # beyond what we accept (PS3.8 D.1): the library's
+                if got > 0:
                     got = self._cest_fill(sock, 6 + length)
                     if got > 0:
                         pdvs = self._cest_pdvs(st.rbuf, st.rlo + 6, st.rlo + 6 + length)

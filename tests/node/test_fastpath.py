@@ -513,6 +513,53 @@ def test_fast_path_reads_a_pdu_beyond_its_buffer_and_many_pdus_in_one_read(tmp_p
         rx.stop()
 
 
+@pytest.mark.peers
+def test_a_pdu_longer_than_announced_goes_to_the_library_and_the_node_serves_on(
+        tmp_path, monkeypatch):
+    """A P-DATA-TF whose length field claims more than the Maximum Length the node announced
+    (PS3.8 D.1; here 2 GB, as a broken or hostile peer might) is not buffered by the
+    association thread: the library reads it, the association ends when the peer goes, and
+    the next association is served."""
+    dss = series_from_arrays(np.random.default_rng(6).random((SLICES, 8, 8, len(OFFSETS))),
+                             OFFSETS)[:1]
+    fast_association = fastpath._classes()[0]
+    fill, needs = fast_association._cest_fill, []
+
+    def recording_fill(self, sock, need):
+        needs.append(need)
+        return fill(self, sock, need)
+
+    monkeypatch.setattr(fast_association, "_cest_fill", recording_fill)
+    rx = Receiver(_cfg(tmp_path, max_pdu=16384), lambda s: None, fast_path=True).start()
+    try:
+        with socket.create_connection(("127.0.0.1", rx.port), timeout=10) as sock:
+            sock.sendall(_associate_rq("CESTNODE", "SCANNER1", UID_CLASS,
+                                       str(ExplicitVRLittleEndian)))
+            kind, _ = _read_pdu(sock)
+            assert kind == 0x02  # A-ASSOCIATE-AC
+            sock.sendall(struct.pack(">BBL", 0x04, 0, 0x7FFFFFF0) + b"\x00" * 64)
+            time.sleep(0.3)
+        assert needs and max(needs) == 6  # the header only: the claimed length never buffered
+        # a second association is served as usual, by the fast path
+        with socket.create_connection(("127.0.0.1", rx.port), timeout=10) as sock:
+            sock.sendall(_associate_rq("CESTNODE", "SCANNER1", UID_CLASS,
+                                       str(ExplicitVRLittleEndian)))
+            kind, _ = _read_pdu(sock)
+            assert kind == 0x02
+            cmd = fastpath.encode_store_request(1, UID_CLASS, str(dss[0].SOPInstanceUID))
+            sock.sendall(b"".join(fastpath.pdata_pdus(1, cmd, encode(dss[0], False, True),
+                                                      16384)))
+            kind, body = _read_pdu(sock)
+            assert kind == 0x04 and _response_status(body) == 0x0000
+            sock.sendall(struct.pack(">BBL", 0x05, 0, 4) + bytes(4))
+            kind, _ = _read_pdu(sock)
+            assert kind == 0x06
+        assert rx.fast_stores == 1
+        assert max(needs) <= 16384 + 6  # PDUs within the announced length are buffered whole
+    finally:
+        rx.stop()
+
+
 # --------------------------------------------------------------------------- library path
 @pytest.fixture
 def node(tmp_path):
