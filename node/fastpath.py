@@ -676,6 +676,10 @@ class _State:
         self.max_read = _UNLIMITED_READ
         # a requestor's: called with (message ID, status) of each C-STORE-RSP it decodes
         self.on_response: Callable[[int, int], None] | None = None
+        # a requestor's DUL cuts P-DATA-TF PDUs from the buffer itself (the library the rest)
+        self.dul_reads = False
+        self.dul_pdus = 0  # P-DATA-TF PDUs it took
+        self.max_read_known = False
 
     def wake_dul(self) -> None:
         try:
@@ -1036,7 +1040,11 @@ def _classes() -> tuple[type, type, type, type, type]:
                     try:
                         if self._process_recv_primitive():
                             pass
-                        elif ((st.owner == "dul" or st.pending)
+                        elif (st.dul_reads and st.owner == "dul"
+                              and (took := self._cest_read_pdata()) is not None):
+                            if took:  # (False: nothing to read now; not the library's turn)
+                                self._idle_timer.restart()
+                        elif ((st.owner == "dul" or st.pending) and st.rlo == st.rhi
                               and self._is_transport_event()):
                             self._idle_timer.restart()
                     except Exception as exc:
@@ -1064,6 +1072,69 @@ def _classes() -> tuple[type, type, type, type, type]:
                 st.granted.set()
                 st.ready.set()
                 st.close()
+
+        def _cest_read_pdata(self) -> bool | None:
+            """A requestor's P-DATA-TF PDUs, cut from what the socket holds here instead of
+            by the library's PDU decoder, events and state machine: in Sta6 receiving a
+            P-DATA-TF is the whole of action DT-2 (the primitive to the DIMSE layer, the
+            state stays Sta6). True when bytes were taken, False when there were none to
+            read, None when the library's reader is to run: outside Sta6, at the end of the
+            connection or at any other PDU, with every byte buffered in ``pending``, which
+            it reads first (``EVT_PDU_RECV`` is not triggered for the PDUs taken here)."""
+            st: _State = self.assoc._cest_fast
+            sock = self.socket.socket if self.socket is not None else None
+            if sock is None or st.pending or self.state_machine.current_state != "Sta6":
+                self._cest_hand_over(st)
+                return None
+            if not st.max_read_known:  # negotiated by now: what we announced, or no limit
+                st.max_read = int(self.assoc.requestor.maximum_length or 0) or _UNLIMITED_READ
+                st.max_read_known = True
+            if st.rlo == st.rhi:
+                st.rlo = st.rhi = 0
+            elif len(st.rbuf) - st.rhi < 65536:  # room for the next read: the rest to the front
+                rest = st.rbuf[st.rlo:st.rhi]
+                st.rbuf[:len(rest)] = rest
+                st.rlo, st.rhi = 0, len(rest)
+            try:
+                with memoryview(st.rbuf) as view:
+                    got = sock.recv_into(view[st.rhi:], 0, socket.MSG_DONTWAIT)
+            except BlockingIOError:
+                return False
+            except OSError:
+                got = 0
+            if not got:  # closed or failed: the library reads it and ends the association
+                self._cest_hand_over(st)
+                return None
+            st.rhi += got
+            while st.rhi - st.rlo >= 6:
+                length = struct.unpack_from(">L", st.rbuf, st.rlo + 2)[0]
+                if st.rbuf[st.rlo] != 0x04 or length > st.max_read:
+                    self._cest_hand_over(st)  # not ours: the library's
+                    return None
+                end = st.rlo + 6 + length
+                if end > st.rhi:
+                    if 6 + length > len(st.rbuf):  # a PDU longer than the buffer: grow it
+                        grown = bytearray(6 + length)
+                        grown[:st.rhi - st.rlo] = st.rbuf[st.rlo:st.rhi]
+                        st.rbuf, st.rlo, st.rhi = grown, 0, st.rhi - st.rlo
+                    break
+                pdvs = FastAssociation._cest_pdvs(st.rbuf, st.rlo + 6, end)
+                if pdvs is None:
+                    self._cest_hand_over(st)  # malformed: the library reports it
+                    return None
+                st.rlo = end
+                st.dul_pdus += 1
+                prim = P_DATA()
+                prim.presentation_data_value_list.extend(
+                    (cx, bytes((flags,)) + fragment) for cx, flags, fragment in pdvs)
+                self.assoc.dimse.receive_primitive(prim)
+            return True
+
+        @staticmethod
+        def _cest_hand_over(st: _State) -> None:
+            if st.rlo != st.rhi:
+                st.pending += st.rbuf[st.rlo:st.rhi]
+            st.rlo = st.rhi = 0
 
     class FastDIMSE(DIMSEServiceProvider):
         """Splits incoming PDVs: simple C-STOREs are ours, everything else the library's."""
@@ -1205,7 +1276,7 @@ def _classes() -> tuple[type, type, type, type, type]:
 
 
 # =========================================================================== send side
-def install_requestor(assoc: Any) -> bool:
+def install_requestor(assoc: Any, sock: Any = None) -> bool:
     """Put the select-waiting DUL (the receive path's, :func:`install`) on a requestor
     association before its DUL thread starts, so that a C-STORE response is read as soon as it
     arrives instead of at the next poll of pynetdicom's sleeping loop (``_run_loop_delay``:
@@ -1216,6 +1287,10 @@ def install_requestor(assoc: Any) -> bool:
     queue, without ``EVT_DIMSE_RECV`` (:func:`on_store_response` tells the sender instead);
     any other message goes to the library's decoder. The association and the socket stay
     the library's.
+
+    With ``sock``, the association's ``AssociationSocket`` (``_create_socket`` returns it
+    before ``set_socket``), the DUL also cuts P-DATA-TF PDUs from the socket itself
+    (``_cest_read_pdata``), leaving every other PDU to the library's reader.
 
     Call it from ``AE._create_socket`` (pynetdicom calls it before ``Association.request``
     starts the DUL). Returns False, leaving the association untouched, when the pynetdicom
@@ -1229,6 +1304,7 @@ def install_requestor(assoc: Any) -> bool:
     from pynetdicom.association import Association
     from pynetdicom.dimse import DIMSEServiceProvider
     from pynetdicom.dul import DULServiceProvider
+    from pynetdicom.transport import AssociationSocket
 
     try:
         dul = assoc.dul
@@ -1246,6 +1322,9 @@ def install_requestor(assoc: Any) -> bool:
     dul.__class__ = _classes()[1]
     dul._target = dul.run_reactor  # bound before the class swap
     assoc.dimse.__class__ = _classes()[4]
+    if type(sock) is AssociationSocket:  # it serves bytes handed over first: the DUL may cut
+        sock.__class__ = _classes()[3]
+        st.dul_reads = True
     return True
 
 

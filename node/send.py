@@ -924,7 +924,7 @@ class _FastWaitAE(AE):
     def _create_socket(self, assoc: Any, address: Any, tls_args: Any) -> Any:
         sock = super()._create_socket(assoc, address, tls_args)
         if tls_args is None:
-            fastpath.install_requestor(assoc)
+            fastpath.install_requestor(assoc, sock)
         return sock
 
 

@@ -22,7 +22,9 @@ from pydicom.uid import (
     SecondaryCaptureImageStorage,
 )
 from pynetdicom import AE, AllStoragePresentationContexts, dimse, evt
+from pynetdicom.sop_class import Verification  # type: ignore[attr-defined]
 
+from node import fastpath
 from node.archive import EmbeddedArchive
 from node.send import (
     FAILED,
@@ -32,10 +34,12 @@ from node.send import (
     Destination,
     Sender,
     SendSettings,
+    _FastWaitAE,
     build_contexts,
     classify_status,
     contexts_for,
     echo,
+    guard_reactor_race,
     send_batch,
 )
 from node.synth import series_from_arrays
@@ -579,3 +583,34 @@ def test_an_object_that_cannot_be_encoded_fails_alone(tmp_path: Path) -> None:
             got[direct] = stored_data_sets(files)
     assert set(got[True]) == {str(d.SOPInstanceUID) for d in batch} - {str(bad.SOPInstanceUID)}
     assert got[True] == got[False]
+
+
+@pytest.mark.peers
+def test_the_fast_wait_reads_responses_itself_and_leaves_the_rest_to_the_library(
+        tmp_path: Path) -> None:
+    """On a requestor put on by fastpath.install_requestor the DUL thread cuts each P-DATA-TF
+    from the socket itself (in Sta6 that is the whole of action DT-2, PS3.8 9.2): C-STORE
+    responses through the direct path, a C-ECHO response through the library's DIMSE
+    decoder; the A-RELEASE-RP, not a P-DATA-TF, goes to the library's reader and the
+    association is released. storescp, a real peer, stores every object."""
+    batch = mr_batch(n_slices=2, n_offsets=3)
+    with StoreSCP(tmp_path / "scp") as scp:
+        ae = _FastWaitAE(ae_title="CESTNODE")
+        ae.add_requested_context(str(batch[0].SOPClassUID),
+                                 str(batch[0].file_meta.TransferSyntaxUID))
+        ae.add_requested_context(Verification)
+        assoc = ae.associate("127.0.0.1", scp.port, ae_title=scp.ae_title,
+                             evt_handlers=[(evt.EVT_CONN_OPEN, guard_reactor_race)])
+        assert assoc.is_established
+        try:
+            for i, ds in enumerate(batch):
+                rsp = fastpath.store_direct(assoc, ds, i + 1)
+                assert rsp is not None and rsp.Status == 0x0000
+            assert assoc.send_c_echo().Status == 0x0000  # the library's C-ECHO, our read
+        finally:
+            assoc.release()
+        assert assoc.is_released
+        st = assoc._cest_fast
+        assert st.fast_count == len(batch)  # C-STORE-RSPs decoded by the fast DIMSE layer
+        assert st.dul_pdus == len(batch) + 1  # and every P-DATA-TF cut by the DUL itself
+        assert len(scp.wait_for(len(batch))) == len(batch)
