@@ -1285,12 +1285,12 @@ def install_requestor(assoc: Any, sock: Any = None) -> bool:
     that comes in one PDV itself (:func:`parse_store_response`; pynetdicom's decoder took
     about 0.85 ms a response here), as the library's ``C_STORE`` primitive on the message
     queue, without ``EVT_DIMSE_RECV`` (:func:`on_store_response` tells the sender instead);
-    any other message goes to the library's decoder. The association and the socket stay
-    the library's.
+    any other message goes to the library's decoder. The association stays the library's.
 
     With ``sock``, the association's ``AssociationSocket`` (``_create_socket`` returns it
     before ``set_socket``), the DUL also cuts P-DATA-TF PDUs from the socket itself
-    (``_cest_read_pdata``), leaving every other PDU to the library's reader.
+    (``_cest_read_pdata``), leaving every other PDU to the library's reader; the socket
+    becomes the receive path's ``FastSocket`` for that (bytes handed over are read first).
 
     Call it from ``AE._create_socket`` (pynetdicom calls it before ``Association.request``
     starts the DUL). Returns False, leaving the association untouched, when the pynetdicom
