@@ -631,6 +631,23 @@ def supported() -> tuple[bool, str]:
     return True, ""
 
 
+def _pdv_items(buf: bytearray, pos: int, end: int) -> list[tuple[int, int, bytes]] | None:
+    """The PDV items of a P-DATA-TF body (PS3.8 9.3.5.1: 4-byte length, context ID, message
+    control header, fragment) as (context ID, header, fragment); None when an item does not
+    fit the PDU."""
+    pdvs: list[tuple[int, int, bytes]] = []
+    with memoryview(buf) as view:
+        while pos < end:
+            if end - pos < 6:
+                return None
+            item = struct.unpack_from(">L", buf, pos)[0]
+            if item < 2 or pos + 4 + item > end:
+                return None
+            pdvs.append((buf[pos + 4], buf[pos + 5], bytes(view[pos + 6:pos + 4 + item])))
+            pos += 4 + item
+    return pdvs
+
+
 class _WakeQueue(queue.Queue):
     """A Queue that calls ``wake()`` after every put."""
 
@@ -680,6 +697,43 @@ class _State:
         self.dul_reads = False
         self.dul_pdus = 0  # P-DATA-TF PDUs it took
         self.max_read_known = False
+
+    def make_room(self, need: int) -> None:
+        """Let the receive buffer hold ``need`` bytes from its read position: the unread
+        rest moved to the front when they would not fit after it, the buffer grown when
+        they would not fit at all."""
+        if self.rlo == self.rhi:
+            self.rlo = self.rhi = 0
+        if self.rlo + need > len(self.rbuf):
+            rest = self.rbuf[self.rlo:self.rhi]
+            if need > len(self.rbuf):
+                self.rbuf = bytearray(max(need, 2 * len(self.rbuf)))
+            self.rbuf[:len(rest)] = rest
+            self.rlo, self.rhi = 0, len(rest)
+
+    def take_pdata(self) -> list[tuple[int, int, bytes]] | int | None:
+        """The next P-DATA-TF in the receive buffer, cut into its PDV items (the read position
+        then past it); or, as an int, how many bytes from the read position it needs
+        buffered to be whole; or None when what is buffered is not one to take (another
+        PDU type, a length beyond :attr:`max_read` (PS3.8 D.1), a malformed item)."""
+        buf, lo = self.rbuf, self.rlo
+        if self.rhi - lo < 6:
+            return 6
+        length = struct.unpack_from(">L", buf, lo + 2)[0]
+        if buf[lo] != 0x04 or length > self.max_read:
+            return None
+        if self.rhi - lo < 6 + length:
+            return 6 + length
+        pdvs = _pdv_items(buf, lo + 6, lo + 6 + length)
+        if pdvs is not None:
+            self.rlo = lo + 6 + length
+        return pdvs
+
+    def to_pending(self) -> None:
+        """Move every unread byte of the receive buffer to ``pending`` (the library's)."""
+        if self.rlo != self.rhi:
+            self.pending += self.rbuf[self.rlo:self.rhi]
+        self.rlo = self.rhi = 0
 
     def wake_dul(self) -> None:
         try:
@@ -819,10 +873,11 @@ def _classes() -> tuple[type, type, type, type, type]:
                 elif msg is None:
                     st.ready.wait(_POLL_S)
 
-        def _cest_give_back(self, data: bytes | bytearray = b"") -> None:
-            """Hand the socket (and any bytes read from it) back to the DUL for good."""
+        def _cest_give_back(self) -> None:
+            """Hand the socket, and every byte read from it and not taken, back to the DUL
+            for good."""
             st: _State = self._cest_fast
-            st.pending += data
+            st.to_pending()
             st.owner = "dul"
             st.wake_dul()
 
@@ -836,14 +891,7 @@ def _classes() -> tuple[type, type, type, type, type]:
             socket is waited on only when a read finds nothing.
             """
             st: _State = self._cest_fast
-            if st.rlo == st.rhi:
-                st.rlo = st.rhi = 0
-            if st.rlo + need > len(st.rbuf):  # make room: the unread rest to the front
-                rest = st.rbuf[st.rlo:st.rhi]
-                if need > len(st.rbuf):
-                    st.rbuf = bytearray(max(need, 2 * len(st.rbuf)))
-                st.rbuf[:len(rest)] = rest
-                st.rlo, st.rhi = 0, len(rest)
+            st.make_room(need)
             with memoryview(st.rbuf) as view:
                 while st.rhi - st.rlo < need:
                     try:
@@ -866,60 +914,30 @@ def _classes() -> tuple[type, type, type, type, type]:
         def _cest_read(self) -> None:
             """Take P-DATA-TF PDUs (Sta6) until one completes a message or none is waiting.
 
-            Anything else (another PDU type, a malformed P-DATA-TF, the end of the
-            connection) is handed back to the DUL with every byte buffered after it, and the
-            DUL reads the socket from then on.
+            Anything else (another PDU type, one longer than we announced, a malformed
+            P-DATA-TF, the end of the connection) is handed back to the DUL with every byte
+            buffered after it, and the DUL reads the socket from then on.
             """
             st: _State = self._cest_fast
             sock = self.dul.socket.socket if self.dul.socket is not None else None
             if sock is None or self.dul.state_machine.current_state != "Sta6":
-                self._cest_give_back(st.rbuf[st.rlo:st.rhi])
-                st.rlo = st.rhi = 0
+                self._cest_give_back()
                 return
             while not self._kill:
-                got = self._cest_fill(sock, 6)
-                if got > 0 and st.rbuf[st.rlo] != 0x04:
-                    got = -1  # not a P-DATA-TF: the DUL reads it
-                if got > 0:
-                    length = struct.unpack_from(">L", st.rbuf, st.rlo + 2)[0]
-                    if length > st.max_read:
-                        got = -1  # beyond what we accept (PS3.8 D.1): the library's
-                if got > 0:
-                    got = self._cest_fill(sock, 6 + length)
-                    if got > 0:
-                        pdvs = self._cest_pdvs(st.rbuf, st.rlo + 6, st.rlo + 6 + length)
-                        if pdvs is None:
-                            got = -1  # malformed: the library reports it
-                        else:
-                            st.rlo += 6 + length
-                            self.dul._idle_timer.restart()
-                            if self.dimse._cest_take(st, pdvs):
-                                return  # a C-STORE is queued: the reactor serves it
-                            continue
-                if got == 0:
+                got = st.take_pdata()
+                if isinstance(got, int):  # not whole yet: read on
+                    filled = self._cest_fill(sock, got)
+                    if filled == 0:
+                        return  # nothing within the poll: the reactor's checks, then again
+                    if filled > 0:
+                        continue
+                    got = None  # the end of the connection: the DUL reads it
+                if got is None:
+                    self._cest_give_back()
                     return
-                self._cest_give_back(st.rbuf[st.rlo:st.rhi])
-                st.rlo = st.rhi = 0
-                return
-
-        @staticmethod
-        def _cest_pdvs(buf: bytearray, pos: int, end: int
-                       ) -> list[tuple[int, int, bytes]] | None:
-            """The PDV items of a P-DATA-TF body (PS3.8 9.3.5.1: 4-byte length, context ID,
-            message control header, fragment) as (context ID, header, fragment); None when
-            an item does not fit the PDU."""
-            pdvs: list[tuple[int, int, bytes]] = []
-            with memoryview(buf) as view:
-                while pos < end:
-                    if end - pos < 6:
-                        return None
-                    item = struct.unpack_from(">L", buf, pos)[0]
-                    if item < 2 or pos + 4 + item > end:
-                        return None
-                    pdvs.append((buf[pos + 4], buf[pos + 5],
-                                 bytes(view[pos + 6:pos + 4 + item])))
-                    pos += 4 + item
-            return pdvs
+                self.dul._idle_timer.restart()
+                if self.dimse._cest_take(st, got):
+                    return  # a C-STORE is queued: the reactor serves it
 
         def _cest_send(self, pdu: bytes) -> bool:
             """Send an encoded PDU now, unless the DUL has something queued before it."""
@@ -1077,64 +1095,47 @@ def _classes() -> tuple[type, type, type, type, type]:
             """A requestor's P-DATA-TF PDUs, cut from what the socket holds here instead of
             by the library's PDU decoder, events and state machine: in Sta6 receiving a
             P-DATA-TF is the whole of action DT-2 (the primitive to the DIMSE layer, the
-            state stays Sta6). True when bytes were taken, False when there were none to
-            read, None when the library's reader is to run: outside Sta6, at the end of the
-            connection or at any other PDU, with every byte buffered in ``pending``, which
-            it reads first (``EVT_PDU_RECV`` is not triggered for the PDUs taken here)."""
+            state stays Sta6). One read a call. True when bytes were taken, False when there
+            were none to read, None when the library's reader is to run: outside Sta6, at
+            the end of the connection or at any other PDU, with every byte buffered in
+            ``pending``, which it reads first (``EVT_PDU_RECV`` is not triggered for the
+            PDUs taken here)."""
             st: _State = self.assoc._cest_fast
             sock = self.socket.socket if self.socket is not None else None
             if sock is None or st.pending or self.state_machine.current_state != "Sta6":
-                self._cest_hand_over(st)
+                st.to_pending()
                 return None
             if not st.max_read_known:  # negotiated by now: what we announced, or no limit
                 st.max_read = int(self.assoc.requestor.maximum_length or 0) or _UNLIMITED_READ
                 st.max_read_known = True
-            if st.rlo == st.rhi:
-                st.rlo = st.rhi = 0
-            elif len(st.rbuf) - st.rhi < 65536:  # room for the next read: the rest to the front
-                rest = st.rbuf[st.rlo:st.rhi]
-                st.rbuf[:len(rest)] = rest
-                st.rlo, st.rhi = 0, len(rest)
-            try:
-                with memoryview(st.rbuf) as view:
-                    got = sock.recv_into(view[st.rhi:], 0, socket.MSG_DONTWAIT)
-            except BlockingIOError:
-                return False
-            except OSError:
-                got = 0
-            if not got:  # closed or failed: the library reads it and ends the association
-                self._cest_hand_over(st)
-                return None
-            st.rhi += got
-            while st.rhi - st.rlo >= 6:
-                length = struct.unpack_from(">L", st.rbuf, st.rlo + 2)[0]
-                if st.rbuf[st.rlo] != 0x04 or length > st.max_read:
-                    self._cest_hand_over(st)  # not ours: the library's
+            read = False
+            while True:
+                got = st.take_pdata()
+                if got is None:  # not ours: the library's
+                    st.to_pending()
                     return None
-                end = st.rlo + 6 + length
-                if end > st.rhi:
-                    if 6 + length > len(st.rbuf):  # a PDU longer than the buffer: grow it
-                        grown = bytearray(6 + length)
-                        grown[:st.rhi - st.rlo] = st.rbuf[st.rlo:st.rhi]
-                        st.rbuf, st.rlo, st.rhi = grown, 0, st.rhi - st.rlo
-                    break
-                pdvs = FastAssociation._cest_pdvs(st.rbuf, st.rlo + 6, end)
-                if pdvs is None:
-                    self._cest_hand_over(st)  # malformed: the library reports it
-                    return None
-                st.rlo = end
+                if isinstance(got, int):  # not whole yet
+                    if read:
+                        return True
+                    st.make_room(got)
+                    try:
+                        with memoryview(st.rbuf) as view:
+                            k = sock.recv_into(view[st.rhi:], 0, socket.MSG_DONTWAIT)
+                    except BlockingIOError:
+                        return False
+                    except OSError:
+                        k = 0
+                    if not k:  # closed or failed: the library reads it, ends the association
+                        st.to_pending()
+                        return None
+                    st.rhi += k
+                    read = True
+                    continue
                 st.dul_pdus += 1
                 prim = P_DATA()
                 prim.presentation_data_value_list.extend(
-                    (cx, bytes((flags,)) + fragment) for cx, flags, fragment in pdvs)
+                    (cx, bytes((flags,)) + fragment) for cx, flags, fragment in got)
                 self.assoc.dimse.receive_primitive(prim)
-            return True
-
-        @staticmethod
-        def _cest_hand_over(st: _State) -> None:
-            if st.rlo != st.rhi:
-                st.pending += st.rbuf[st.rlo:st.rhi]
-            st.rlo = st.rhi = 0
 
     class FastDIMSE(DIMSEServiceProvider):
         """Splits incoming PDVs: simple C-STOREs are ours, everything else the library's."""
