@@ -23,11 +23,10 @@ Pure encoding: no files, no sockets.
 
 from __future__ import annotations
 
-import threading
 from typing import Any
 
 from pydicom import Dataset
-from pydicom.charset import default_encoding
+from pydicom.charset import convert_encodings, default_encoding
 from pydicom.dataelem import DataElement, RawDataElement
 from pydicom.filebase import DicomBytesIO
 from pydicom.filewriter import correct_ambiguous_vr, write_data_element
@@ -45,8 +44,7 @@ _ITEM = b"\xfe\xff\x00\xe0"  # (FFFE,E000) Item, little endian
 _ITEM_END = b"\xfe\xff\x0d\xe0\x00\x00\x00\x00"  # (FFFE,E00D) Item Delimitation, length 0
 _SEQ_END = b"\xfe\xff\xdd\xe0\x00\x00\x00\x00"  # (FFFE,E0DD) Sequence Delimitation, length 0
 
-_memo: dict[tuple[Any, ...], bytes] = {}
-_lock = threading.Lock()
+_memo: dict[tuple[Any, ...], bytes] = {}  # threads share it: each get and set is atomic
 
 
 def memo_size() -> int:
@@ -64,8 +62,7 @@ def encode(ds: Dataset, implicit_vr: bool) -> bytes:
     fp.is_little_endian = True
     _write_dataset(fp, ds, default_encoding)
     if len(_memo) > MEMO_MAX:
-        with _lock:
-            _memo.clear()
+        _memo.clear()
     return fp.getvalue()
 
 
@@ -123,8 +120,6 @@ def _write_sequence(fp: DicomBytesIO, elem: DataElement, encoding: Any,
     """A sequence element as ``write_data_element`` writes one (PS3.5 7.5): its items encoded
     here (``write_sequence_item``: defined item lengths unless an item asks for undefined),
     then the element's header, with an undefined length when the element has one."""
-    from pydicom.charset import convert_encodings
-
     encodings = convert_encodings(encoding or [default_encoding])
     body = DicomBytesIO()
     body.is_implicit_VR = fp.is_implicit_VR
