@@ -8,6 +8,7 @@ The receive tests of tests/node/test_receive.py run here a second time with the 
 
 from __future__ import annotations
 
+import contextlib
 import random
 import socket
 import struct
@@ -401,6 +402,22 @@ def _read_pdu(sock: socket.socket) -> tuple[int, bytes]:
     return head[0], exactly(struct.unpack(">L", head[2:])[0])
 
 
+@contextlib.contextmanager
+def _associated(port: int):
+    """A raw TCP connection to the node with an accepted association (our A-ASSOCIATE-RQ for
+    MR Image Storage in Explicit VR Little Endian, its A-ASSOCIATE-AC read), Nagle off."""
+    with socket.create_connection(("127.0.0.1", port), timeout=10) as sock:
+        sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+        sock.sendall(_associate_rq("CESTNODE", "SCANNER1", UID_CLASS,
+                                   str(ExplicitVRLittleEndian)))
+        kind, _ = _read_pdu(sock)
+        assert kind == 0x02  # A-ASSOCIATE-AC
+        yield sock
+
+
+RELEASE_RQ = struct.pack(">BBL", 0x05, 0, 4) + bytes(4)  # A-RELEASE-RQ (PS3.8 9.3.6)
+
+
 def _response_status(body: bytes) -> int:
     """Status (0000,0900) of the C-STORE-RSP in one P-DATA-TF body (one PDV, PS3.8 9.3.5)."""
     assert body[5] == 0x03  # the last fragment of a command
@@ -436,12 +453,7 @@ def test_fast_path_reads_pdus_split_anywhere_and_a_release_behind_the_data(tmp_p
     rx = Receiver(_cfg(tmp_path), lambda s: None, fast_path=True).start()
     rng = random.Random(7)
     try:
-        with socket.create_connection(("127.0.0.1", rx.port), timeout=10) as sock:
-            sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
-            sock.sendall(_associate_rq("CESTNODE", "SCANNER1", UID_CLASS,
-                                       str(ExplicitVRLittleEndian)))
-            kind, body = _read_pdu(sock)
-            assert kind == 0x02  # A-ASSOCIATE-AC
+        with _associated(rx.port) as sock:
             streams = []
             for i, ds in enumerate(dss):
                 data = encode(ds, False, True)
@@ -450,8 +462,7 @@ def test_fast_path_reads_pdus_split_anywhere_and_a_release_behind_the_data(tmp_p
             _dribble(sock, streams[0], rng)
             kind, body = _read_pdu(sock)
             assert kind == 0x04 and _response_status(body) == 0x0000
-            release_rq = struct.pack(">BBL", 0x05, 0, 4) + bytes(4)
-            sock.sendall(streams[1] + release_rq)  # one write: one read on the node's side
+            sock.sendall(streams[1] + RELEASE_RQ)  # one write: one read on the node's side
             kind, body = _read_pdu(sock)
             assert kind == 0x04 and _response_status(body) == 0x0000  # answered first
             kind, body = _read_pdu(sock)
@@ -478,12 +489,7 @@ def test_fast_path_reads_a_pdu_beyond_its_buffer_and_many_pdus_in_one_read(tmp_p
                                OFFSETS)[:2]
     rx = Receiver(_cfg(tmp_path, max_pdu=0), lambda s: None, fast_path=True).start()
     try:
-        with socket.create_connection(("127.0.0.1", rx.port), timeout=10) as sock:
-            sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
-            sock.sendall(_associate_rq("CESTNODE", "SCANNER1", UID_CLASS,
-                                       str(ExplicitVRLittleEndian)))
-            kind, _ = _read_pdu(sock)
-            assert kind == 0x02  # A-ASSOCIATE-AC
+        with _associated(rx.port) as sock:
             sent = [big, *small]
             data = [encode(ds, False, True) for ds in sent]
             cmds = [fastpath.encode_store_request(i + 1, UID_CLASS, str(ds.SOPInstanceUID))
@@ -498,7 +504,7 @@ def test_fast_path_reads_a_pdu_beyond_its_buffer_and_many_pdus_in_one_read(tmp_p
             for _ in sent:
                 kind, body = _read_pdu(sock)
                 assert kind == 0x04 and _response_status(body) == 0x0000
-            sock.sendall(struct.pack(">BBL", 0x05, 0, 4) + bytes(4))  # A-RELEASE-RQ
+            sock.sendall(RELEASE_RQ)
             kind, _ = _read_pdu(sock)
             assert kind == 0x06  # A-RELEASE-RP
         assert rx.fast_stores == 3
@@ -532,26 +538,18 @@ def test_a_pdu_longer_than_announced_goes_to_the_library_and_the_node_serves_on(
     monkeypatch.setattr(fast_association, "_cest_fill", recording_fill)
     rx = Receiver(_cfg(tmp_path, max_pdu=16384), lambda s: None, fast_path=True).start()
     try:
-        with socket.create_connection(("127.0.0.1", rx.port), timeout=10) as sock:
-            sock.sendall(_associate_rq("CESTNODE", "SCANNER1", UID_CLASS,
-                                       str(ExplicitVRLittleEndian)))
-            kind, _ = _read_pdu(sock)
-            assert kind == 0x02  # A-ASSOCIATE-AC
+        with _associated(rx.port) as sock:
             sock.sendall(struct.pack(">BBL", 0x04, 0, 0x7FFFFFF0) + b"\x00" * 64)
             time.sleep(0.3)
         assert needs and max(needs) == 6  # the header only: the claimed length never buffered
         # a second association is served as usual, by the fast path
-        with socket.create_connection(("127.0.0.1", rx.port), timeout=10) as sock:
-            sock.sendall(_associate_rq("CESTNODE", "SCANNER1", UID_CLASS,
-                                       str(ExplicitVRLittleEndian)))
-            kind, _ = _read_pdu(sock)
-            assert kind == 0x02
+        with _associated(rx.port) as sock:
             cmd = fastpath.encode_store_request(1, UID_CLASS, str(dss[0].SOPInstanceUID))
             sock.sendall(b"".join(fastpath.pdata_pdus(1, cmd, encode(dss[0], False, True),
                                                       16384)))
             kind, body = _read_pdu(sock)
             assert kind == 0x04 and _response_status(body) == 0x0000
-            sock.sendall(struct.pack(">BBL", 0x05, 0, 4) + bytes(4))
+            sock.sendall(RELEASE_RQ)
             kind, _ = _read_pdu(sock)
             assert kind == 0x06
         assert rx.fast_stores == 1
