@@ -24,7 +24,15 @@ from quant.bmfit import aptr_star  # noqa: F401  (model-based; not registered: n
 from quant.lorentz import lda, multi_lorentzian  # noqa: F401  (registers 'lda', 'multi_lorentzian')
 from quant.measures import apt_star, arex, mtr_asym, mtr_asym_t1, z_at
 from quant.registry import METHODS, PRIMARY_METHOD, MethodInfo, get_method, register
-from quant.spectra import Spectrum, brain_mask, finite_rows, m0_reference, normalize, sort_offsets
+from quant.spectra import (
+    Spectrum,
+    brain_mask,
+    finite_rows,
+    m0_reference,
+    normalize,
+    sort_offsets,
+    spectra_from_frames,
+)
 
 __all__ = [
     "B0Result",
@@ -49,6 +57,7 @@ __all__ = [
     "register",
     "resample_shifted",
     "sort_offsets",
+    "spectra_from_frames",
     "warm_b0",
     "warm_fits",
     "z_at",

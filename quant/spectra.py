@@ -15,7 +15,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 __all__ = ["Spectrum", "as_float", "brain_mask", "check_offsets", "finite_rows", "m0_reference",
-           "normalize", "sort_offsets"]
+           "normalize", "sort_offsets", "spectra_from_frames"]
 
 
 def as_float(a: ArrayLike, name: str = "signal") -> NDArray[np.floating]:
@@ -234,6 +234,36 @@ def finite_rows(z: ArrayLike) -> NDArray[np.bool_]:
     else:
         _jit.rows_finite(flat, out)
     return out.reshape(arr.shape[:-1])
+
+
+def spectra_from_frames(frames: np.ndarray, order: ArrayLike,
+                        out: np.ndarray | None = None) -> NDArray[np.floating]:
+    """One slice's frames ``(K, rows, cols)`` as its spectra ``(rows, cols, n)`` in the array
+    convention of this package: ``out[..., c] = frames[order[c]]``, a copy value for value.
+
+    ``order`` (``n`` frame indices, any order, repeats allowed) says which frame fills each
+    column; frames it does not name are not read. ``out`` (C-contiguous, the frames' dtype) is
+    written in place when given. A tiled copy (:func:`quant._jit.frames_to_rows`): numpy's
+    ``frames[order].transpose(1, 2, 0)`` gives the same values about 2-3 x slower, since it
+    reads every frame with a stride of a whole frame per voxel.
+    """
+    from quant import _jit  # numba: imported where used, as the fits do
+
+    src = np.asarray(frames)
+    if src.ndim != 3 or src.dtype.kind != "f" or not src.flags.c_contiguous:
+        raise ValueError(f"frames must be a C-contiguous float (K, rows, cols) array, got "
+                         f"{src.dtype} {src.shape}")
+    idx = np.asarray(order, dtype=np.intp)
+    if idx.ndim != 1 or (idx.size and (idx.min() < 0 or idx.max() >= src.shape[0])):
+        raise ValueError(f"order must be 1-D indices into the {src.shape[0]} frames")
+    shape = (*src.shape[1:], idx.size)
+    if out is None:
+        out = np.empty(shape, dtype=src.dtype)
+    elif out.shape != shape or out.dtype != src.dtype or not out.flags.c_contiguous:
+        raise ValueError(f"out must be a C-contiguous {src.dtype} array of shape {shape}, got "
+                         f"{out.dtype} {out.shape}")
+    _jit.frames_to_rows(src.reshape(src.shape[0], -1), idx, out.reshape(-1, idx.size))
+    return out
 
 
 def brain_mask(m0: ArrayLike, *, fraction: float = 0.25, percentile: float = 99.0) -> NDArray[np.bool_]:

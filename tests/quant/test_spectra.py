@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 from quant.phantom import make_phantom
-from quant.spectra import brain_mask, normalize, sort_offsets
+from quant.spectra import brain_mask, normalize, sort_offsets, spectra_from_frames
 
 
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])
@@ -114,3 +114,34 @@ def test_normalize_of_chosen_voxels_is_the_whole_arrays_rows(dtype):
         normalize(sig, offsets, voxels=np.array([60]))
     with pytest.raises(ValueError, match="integer flat indices"):
         normalize(sig, offsets, voxels=np.array([0.0]))
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+@pytest.mark.parametrize("shape", [(7, 5, 3), (61, 128, 128), (4, 1, 130)])
+def test_spectra_from_frames_is_numpys_gather_and_transpose(dtype, shape):
+    # reference: numpy's fancy index and transposed copy, the expression it replaces (a copy:
+    # equal value for value, NaN included); tiles of 64 voxels with a partial last tile
+    rng = np.random.default_rng(3)
+    frames = rng.normal(size=(shape[0] + 2, *shape[1:])).astype(dtype)
+    frames[1, 0, 0] = np.nan
+    order = rng.permutation(shape[0] + 2)[: shape[0]]  # not every frame, in any order
+    order[-1] = order[0]  # a frame in two columns
+    want = frames[order].transpose(1, 2, 0)
+    got = spectra_from_frames(frames, order)
+    assert got.dtype == dtype and got.flags.c_contiguous
+    np.testing.assert_array_equal(got, want)
+    out = np.full(want.shape, 7.0, dtype)
+    assert spectra_from_frames(frames, order, out) is out
+    np.testing.assert_array_equal(out, want)
+
+
+def test_spectra_from_frames_names_what_is_wrong():
+    frames = np.zeros((3, 2, 2), np.float32)
+    with pytest.raises(ValueError, match="order must be 1-D indices into the 3 frames"):
+        spectra_from_frames(frames, [0, 3])
+    with pytest.raises(ValueError, match="C-contiguous float"):
+        spectra_from_frames(frames.astype(np.int16), [0])
+    with pytest.raises(ValueError, match="C-contiguous float"):
+        spectra_from_frames(frames[:, :, ::-1], [0])
+    with pytest.raises(ValueError, match=r"out must be a C-contiguous float32 array of shape \(2, 2, 2\)"):
+        spectra_from_frames(frames, [0, 1], np.zeros((2, 2, 3), np.float32))
