@@ -19,6 +19,8 @@ import math
 import highdicom as hd
 import numpy as np
 from pydicom import Dataset
+from pydicom.datadict import dictionary_VR, tag_for_keyword
+from pydicom.dataelem import DataElement
 from pydicom.dataset import FileMetaDataset
 from pydicom.sequence import Sequence as DicomSequence
 from pydicom.uid import UID, ExplicitVRLittleEndian, MRImageStorage
@@ -86,8 +88,16 @@ def _ds_str(x: float) -> str:
     return s if len(s) <= 16 else f"{x:.6g}"
 
 
-def build(req: DerivedRequest) -> list[Dataset]:
+def build(req: DerivedRequest, *, template: bool = True) -> list[Dataset]:
     """Build one derived MR Image per slice of a request.
+
+    The first slice's object is built attribute by attribute; with ``template`` (the default)
+    the others are that object with their own UIDs, number, geometry, source reference and
+    pixels (:func:`_like`), as the Secondary Capture builder does: pydicom's attribute
+    setting (keyword lookup, conversion and validation of each value, about 25 us an element)
+    was most of the build, 2.4 ms a slice here. A slice whose reference differs from the
+    first's in anything else the object takes from it gets its own full build.
+    ``tests/node/test_derive.py`` checks that both ways give the same objects.
 
     Returns
     -------
@@ -115,9 +125,17 @@ def build(req: DerivedRequest) -> list[Dataset]:
                   f"saturation series; stored = round(value / {_ds_str(slope)}), invalid = "
                   f"{PADDING_VALUE}. {RESEARCH_STATEMENT}")
     out: list[Dataset] = []
+    first: Dataset | None = None
+    first_ref = _from_ref(req.references[0])
     for i, ref in enumerate(req.references):
-        ds = Dataset()
         uid = UID(output_uid(req.series_uid, KIND, i))
+        pixels = np.ascontiguousarray(stored[i]).tobytes()
+        like = (_like(first, first_ref, ref, uid, i + 1, pixels)
+                if first is not None and template else None)
+        if like is not None:
+            out.append(like)
+            continue
+        ds = Dataset()
         ds.file_meta = FileMetaDataset()
         ds.file_meta.MediaStorageSOPClassUID = MRImageStorage
         ds.file_meta.MediaStorageSOPInstanceUID = uid
@@ -180,6 +198,50 @@ def build(req: DerivedRequest) -> list[Dataset]:
         ds.RealWorldValueMappingSequence = DicomSequence([rwvm])
         if is_private(concept):
             declare_private_scheme(ds)
-        ds.PixelData = np.ascontiguousarray(stored[i]).tobytes()
+        ds.PixelData = pixels
         out.append(ds)
+        if first is None:  # the template stays the first slice's object
+            first = ds
     return out
+
+
+#: What the object takes from its slice's reference besides the geometry: a slice whose
+#: reference differs from the first's in any of them gets its own full build
+_FROM_REF = (*PATIENT_STUDY_KEYWORDS, *SERIES_KEYWORDS, "FrameOfReferenceUID",
+             "PositionReferenceIndicator", "Rows", "Columns", *_MR_TYPE1, *_MR_TYPE2,
+             *_MR_TYPE3)
+_GEOMETRY_TAGS = tuple((tag_for_keyword(kw), dictionary_VR(tag_for_keyword(kw)))
+                       for kw in _GEOMETRY)
+
+
+def _from_ref(ref: Dataset) -> tuple[tuple[str, ...], tuple[bool, ...]]:
+    """What a reference gives the object besides the geometry's values: the :data:`_FROM_REF`
+    attributes as text, and which geometry attributes it has."""
+    return (tuple("" if (v := ref.get(kw)) is None else str(v) for kw in _FROM_REF),
+            tuple(kw in ref for kw in _GEOMETRY))
+
+
+def _like(first: Dataset, first_ref: tuple[tuple[str, ...], tuple[bool, ...]], ref: Dataset,
+          uid: UID, number: int, pixels: bytes) -> Dataset | None:
+    """``first`` with another slice's UIDs, number, geometry, source and pixels; None when
+    the slice's reference is not like the first's (its object is then built in full).
+
+    A shallow copy, as :func:`node.derive.sc._like`: a dict of its own holding ``first``'s
+    element objects, and new element objects for what differs (setting an attribute that
+    exists would change the shared element in place).
+    """
+    if _from_ref(ref) != first_ref:  # the first slice's reference's, from :func:`_from_ref`
+        return None
+    ds = Dataset(dict(first._dict))
+    ds.set_original_encoding(False, True, first.original_character_set)
+    ds[0x00080018] = DataElement(0x00080018, "UI", uid)
+    ds[0x00200013] = DataElement(0x00200013, "IS", number)
+    ds[0x00082112] = DataElement(0x00082112, "SQ", DicomSequence([source_image_item(ref)]))
+    for tag, vr in _GEOMETRY_TAGS:
+        if tag in ref:
+            ds[tag] = DataElement(tag, vr, ref[tag].value)
+    ds[0x7FE00010] = DataElement(0x7FE00010, first[0x7FE00010].VR, pixels)  # int16: even
+    meta = FileMetaDataset(dict(first.file_meta._dict))
+    meta[0x00020003] = DataElement(0x00020003, "UI", uid)
+    ds.file_meta = meta
+    return ds

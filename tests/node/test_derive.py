@@ -8,6 +8,7 @@ Mapping) define what the numbers mean.
 
 from __future__ import annotations
 
+import io
 import subprocess
 from pathlib import Path
 
@@ -497,3 +498,46 @@ def test_latin1_patient_name_round_trips(kind, tmp_path):
     back = [pydicom.dcmread(p) for p in _write(BUILDERS[kind](req), tmp_path)]
     assert all(str(ds.PatientName) == "PHANT\u00d6M^J\u00f6rg" for ds in back)
     assert all(ds.SpecificCharacterSet == "ISO_IR 100" for ds in back)
+
+
+def test_derived_mr_template_gives_the_objects_built_attribute_by_attribute():
+    """The slices after the first are the first object with their own UIDs, number,
+    geometry, source and pixels (node.derive.mr.build): element for element, and byte for
+    byte once encoded, what the attribute-by-attribute build gives for each slice (that build
+    is the reference: it is the one dciodvfy checks above); a reference unlike the first's
+    in an attribute the object copies gets a full build of its own."""
+    from pydicom.filewriter import dcmwrite
+
+    from node.derive import mr as mr_builder
+
+    req = make_request("derived_mr")
+    assert len(req.references) > 2
+    req.references[2] = req.references[2].copy()
+    req.references[2].EchoTime = "7.5"  # unlike the first: built in full, and correct
+    del req.references[2].SliceLocation
+
+    def encoded(ds) -> bytes:
+        buf = io.BytesIO()
+        dcmwrite(buf, ds, enforce_file_format=True)
+        return buf.getvalue()
+
+    fast = mr_builder.build(req)
+    full = mr_builder.build(req, template=False)
+    assert len(fast) == len(full) == len(req.references)
+    stamps = {"InstanceCreationTime", "ContentTime", "SeriesTime"}
+    for a, b in zip(fast, full, strict=True):
+        for kw in stamps:  # the two builds ran at different times
+            b[kw].value = a[kw].value
+        assert a == b
+        assert a.file_meta == b.file_meta
+    # encoded after every comparison: writing resolves ambiguous VRs (US or SS) in place, in
+    # the elements the template's objects share, which the full build's objects do not
+    for a, b in zip(fast, full, strict=True):
+        assert encoded(a) == encoded(b)
+    assert fast[2].EchoTime == 7.5 and "SliceLocation" not in fast[2]
+    assert [d.InstanceNumber for d in fast] == list(range(1, len(fast) + 1))
+    assert len({d.SOPInstanceUID for d in fast}) == len(fast)
+    # the objects share the first's unchanged elements, never the ones that differ
+    assert fast[1]["Modality"] is fast[0]["Modality"]
+    assert fast[1]["SOPInstanceUID"] is not fast[0]["SOPInstanceUID"]
+    assert fast[1].file_meta is not fast[0].file_meta
