@@ -78,11 +78,13 @@ def build(req: DerivedRequest, *, template: bool = True) -> list[Dataset]:
                 f"{RESEARCH_STATEMENT}")
     out: list[Dataset] = []
     first: Dataset | None = None
+    first_ref = _from_ref(req.references[0])
     for i, ref in enumerate(req.references):
         rgb = renderer.render(req.values[i], req.m0[i], m0_range=m0_range,
                               label=f"slice {i + 1}/{n}")
         uid = output_uid(req.series_uid, KIND, i)
-        like = _like(first, rgb, uid, i + 1, ref) if first is not None and template else None
+        like = (_like(first, first_ref, rgb, uid, i + 1, ref)
+                if first is not None and template else None)
         if like is not None:
             out.append(like)
             continue
@@ -116,7 +118,13 @@ def build(req: DerivedRequest, *, template: bool = True) -> list[Dataset]:
     return out
 
 
-def _like(first: Dataset, rgb: np.ndarray, uid: str, number: int,
+def _from_ref(ref: Dataset) -> tuple[str, ...]:
+    """What highdicom takes from a reference (:data:`_SHARED`, and the orientation behind
+    Patient Orientation) as text: two references with the same give the same object."""
+    return (*(_text(ref.get(kw)) for kw in _SHARED), _text(ref.get("ImageOrientationPatient")))
+
+
+def _like(first: Dataset, first_ref: tuple[str, ...], rgb: np.ndarray, uid: str, number: int,
           ref: Dataset) -> Dataset | None:
     """``first`` with another slice's pixels, UIDs, number and source; None when the slice's
     reference is not like the first's (its object is then built in full).
@@ -126,9 +134,8 @@ def _like(first: Dataset, rgb: np.ndarray, uid: str, number: int,
     attribute that exists changes its element in place, so neither may be used here (every
     slice would end with the last slice's UID).
     """
-    if (tuple(rgb.shape) != (int(first.Rows), int(first.Columns), 3)
-            or patient_orientation(ref) != tuple(first.PatientOrientation)
-            or any(_text(ref.get(kw)) != _text(first.get(kw)) for kw in _SHARED)):
+    if rgb.shape != (first[0x00280010].value, first[0x00280011].value, 3) or (
+            _from_ref(ref) != first_ref):  # the first slice's reference's
         return None
     data = np.ascontiguousarray(rgb, dtype=np.uint8).tobytes()  # PlanarConfiguration 0
     sc = Dataset(dict(first._dict))
