@@ -29,6 +29,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from quant.bloch import GAMMA_HZ_PER_T
+from quant.parts import in_parts
 from quant.spectra import as_float, check_offsets
 
 __all__ = ["B0Result", "estimate_b0_shift", "correct_b0", "resample_shifted", "hz_to_ppm"]
@@ -94,7 +95,9 @@ def estimate_b0_shift(
 
     flat = np.ascontiguousarray(zz.reshape(-1, zz.shape[-1]))
     shift = np.empty(flat.shape[0], dtype=dt)
-    _jit.b0_vertex(flat, cand.astype(np.intp), off[cand], float(window_ppm), shift)
+    cols, xc, win = cand.astype(np.intp), off[cand], float(window_ppm)
+    in_parts(flat.shape[0], lambda lo, hi: _jit.b0_vertex(flat[lo:hi], cols, xc, win,
+                                                          shift[lo:hi]))
     with np.errstate(invalid="ignore"):
         shift[~(np.abs(shift) <= max_shift_ppm)] = np.nan
     return shift.reshape(zz.shape[:-1])

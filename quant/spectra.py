@@ -14,6 +14,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from quant.parts import in_parts
+
 __all__ = ["Spectrum", "as_float", "brain_mask", "check_offsets", "finite_rows", "m0_reference",
            "normalize", "sort_offsets", "spectra_from_frames"]
 
@@ -157,8 +159,11 @@ def normalize(
             from quant import _jit
 
             z = np.empty((vox.size, so.size), dtype=sig.dtype)
-            _jit.gather_scaled(np.ascontiguousarray(flat), vox.astype(np.intp, copy=False),
-                               cols, _inverse(ref, sig.dtype), z)
+            src = np.ascontiguousarray(flat)
+            rows = vox.astype(np.intp, copy=False)
+            inv = _inverse(ref, sig.dtype)
+            in_parts(vox.size, lambda lo, hi: _jit.gather_scaled(src, rows[lo:hi], cols,
+                                                                 inv[lo:hi], z[lo:hi]))
             return Spectrum(z=z, offsets_ppm=so, m0=ref)
         sig = flat[vox]
     z, uo = _sorted(sig, off, sat_idx)
