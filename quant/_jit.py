@@ -21,7 +21,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["b0_vertex", "frames_to_rows", "gather_scaled", "lm_trial", "lorentz_normal", "predicted_reduction",
+__all__ = ["b0_vertex", "frames_to_rows", "gather_scaled", "spline_rows", "lm_trial", "lorentz_normal", "predicted_reduction",
            "rows_finite"]
 
 #: LLVM may reassociate and contract (fused multiply-add) sums, so that it vectorises the dot
@@ -369,6 +369,23 @@ def gather_scaled(sig, rows, cols, inv, out):  # pragma: no cover - compiled
             out[i, j] = sig[r, cols[j]] * s
 
 
+@njit(cache=True, nogil=True)
+def spline_rows(yg, mg, rows, jy, jm, pos, a, b, ca, cb, out):  # pragma: no cover - compiled
+    """``out[rows[i], pos[c]] = yg[i, jy[c]] a[i] + yg[i, jy[c] + 1] b[i] + mg[i, jm[c]] ca[i]
+    + mg[i, jm[c] + 1] cb[i]``: a block of natural cubic spline values
+    (:func:`quant.b0.resample_shifted` at some columns) from the block's samples ``yg`` and
+    second derivatives ``mg``, written into the rows ``rows`` of ``out``. The products and
+    sums are those of the numpy expression it replaces, in its order and dtype (no fastmath:
+    nothing reassociated or fused), so the values are the same bit for bit."""
+    for i in range(rows.size):
+        r = rows[i]
+        ai, bi, cai, cbi = a[i], b[i], ca[i], cb[i]
+        for c in range(jy.size):
+            j, k = jy[c], jm[c]
+            out[r, pos[c]] = (yg[i, j] * ai + yg[i, j + 1] * bi + mg[i, k] * cai
+                              + mg[i, k + 1] * cbi)
+
+
 #: voxels per tile of :func:`frames_to_rows`: the tile's rows of every frame (61 x 256 B at
 #: 64 float32) and its block of spectra stay in the L1/L2 caches while they are read and written
 _TILE = 64
@@ -402,6 +419,8 @@ def warm_b0() -> None:
         b0_vertex(z, np.arange(5), np.linspace(-1.0, 1.0, 5), 0.6, np.empty(1, dt))
         rows_finite(z, np.empty(1, np.bool_))
         frames_to_rows(z.reshape(5, 1), np.arange(5), np.empty((1, 5), dt))
+        one, idx = np.ones(1, dt), np.zeros(1, np.intp)
+        spline_rows(z, z, idx, idx, idx, idx, one, one, one, one, np.empty((1, 5), dt))
 
 
 def warm() -> None:
