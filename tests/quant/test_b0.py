@@ -182,3 +182,28 @@ def test_shift_estimate_gives_nan_for_a_voxel_with_a_non_finite_value_only():
     assert est.dtype == np.float32
     assert np.isnan(est[1])
     assert est[0] == pytest.approx(0.2, abs=1e-3) and est[2] == est[0]
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_the_band_pass_is_the_numpy_expression_bit_for_bit(dtype):
+    # reference: the numpy expression quant._jit.spline_rows replaced (same products, sums,
+    # order and dtype), scattered into a NaN-filled output as that form did
+    from quant import _jit
+
+    rng = np.random.default_rng(9)
+    yg = rng.uniform(0.1, 1.0, (300, 61)).astype(dtype)
+    mg = rng.normal(0.0, 20.0, (300, 24)).astype(dtype)
+    rows = rng.permutation(500)[:300]
+    jy = np.r_[8:14, 39:53].astype(np.intp)
+    jm = rng.integers(0, 23, jy.size).astype(np.intp)
+    pos = np.arange(jy.size, dtype=np.intp)
+    b = rng.uniform(0.0, 1.0, (300, 1)).astype(dtype)
+    a = 1.0 - b
+    h2 = 0.2 * 0.2 / 6.0
+    ca, cb = (a * a * a - a) * h2, (b * b * b - b) * h2
+    want = np.full((500, jy.size + 2), np.nan, dtype)
+    want[rows[:, None], pos] = (yg[:, jy] * a + yg[:, jy + 1] * b + mg[:, jm] * ca
+                                + mg[:, jm + 1] * cb)
+    got = np.full_like(want, np.nan)
+    _jit.spline_rows(yg, mg, rows, jy, jm, pos, a[:, 0], b[:, 0], ca[:, 0], cb[:, 0], got)
+    assert np.array_equal(got, want, equal_nan=True)
