@@ -78,6 +78,9 @@ class Prepared:
     """The B0-corrected rows once computed (or given: :meth:`of_voxels`)."""
     given: bool = False
     """``corrected`` was given, not computed from ``zv_uncorrected`` and ``shift_v``."""
+    m0_range: tuple[float, float] | None = None
+    """The grey window of ``m0`` under the colour overlays, once computed (the node's
+    Processor sets it; every method's Secondary Capture uses it)."""
     _cache: dict[object, np.ndarray] = field(default_factory=dict, repr=False, compare=False)
     _lock: threading.Lock = field(default_factory=threading.Lock, repr=False, compare=False)
 
@@ -169,6 +172,16 @@ class MethodResult:
     values: np.ndarray
     seconds: float
     n_voxels: int
+    _display: tuple[float, float] | None = field(default=None, repr=False, compare=False)
+
+    @property
+    def display(self) -> tuple[float, float]:
+        """:func:`display_range` of :attr:`values`, computed once: every output of the map
+        and the reports use it (two percentiles of up to a few hundred thousand voxels, about
+        10 ms each at 40 slices here)."""
+        if self._display is None:
+            self._display = display_range(self.values)
+        return self._display
 
 
 def prepare(

@@ -35,7 +35,7 @@ from node.derive import (
     header_only,
     qc_note,
 )
-from node.derive.render import warm_render
+from node.derive.render import robust_range, warm_render
 from node.memory import (
     collect_between_series,
     freeze_startup_objects,
@@ -457,7 +457,7 @@ class Processor:
                 qc=figures,
                 qc_reasons=reasons,
                 parametric_maps={r.name: pm for r, pm in results if pm is not None},
-                display_ranges={r.name: pipeline.display_range(r.values) for r, _ in results},
+                display_ranges={r.name: r.display for r, _ in results},
                 candidate_n_sd=protocol.qc.candidate_n_sd,
                 note=note,
             )
@@ -466,6 +466,15 @@ class Processor:
         self._hand_over(OutputBatch(series.key, datasets, label="report"), clock, outcome,
                         stream=stream)
         outcome.objects += len(datasets)
+
+    @staticmethod
+    def _m0_range(prep: pipeline.Prepared) -> tuple[float, float]:
+        """The grey window of the series' M0 under the colour overlays, computed once per
+        series (a percentile of every voxel: about 5 ms at 40 slices here) and kept with the
+        prepared spectra, whose M0 it is."""
+        if prep.m0_range is None:
+            prep.m0_range = robust_range(prep.m0)
+        return prep.m0_range
 
     def _emit(self, series: AssembledSeries, protocol: Protocol, prep: pipeline.Prepared,
               res: pipeline.MethodResult, clock: SeriesClock, outcome: SeriesOutcome,
@@ -479,7 +488,8 @@ class Processor:
         source_number = series.references[0].get("SeriesNumber")
         datasets: list[Dataset] = []
         streaming = stream and self.submit is not None
-        lo_hi = pipeline.display_range(res.values)
+        lo_hi = res.display
+        m0_range = self._m0_range(prep) if "secondary_capture" in protocol.outputs else None
         for kind in OUTPUT_ORDER:
             if kind not in protocol.outputs:
                 continue
@@ -493,6 +503,7 @@ class Processor:
                 series_number=output_series_number(source_number, name, kind),
                 m0=prep.m0 if kind == "secondary_capture" else None,
                 display_range=lo_hi,
+                m0_range=m0_range if kind == "secondary_capture" else None,
                 note=self._note(series, []) if note is None else note,
             )
             try:

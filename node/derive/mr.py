@@ -210,8 +210,16 @@ def build(req: DerivedRequest, *, template: bool = True) -> list[Dataset]:
 _FROM_REF = (*PATIENT_STUDY_KEYWORDS, *SERIES_KEYWORDS, "FrameOfReferenceUID",
              "PositionReferenceIndicator", "Rows", "Columns", *_MR_TYPE1, *_MR_TYPE2,
              *_MR_TYPE3)
-_GEOMETRY_TAGS = tuple((tag_for_keyword(kw), dictionary_VR(tag_for_keyword(kw)))
-                       for kw in _GEOMETRY)
+
+
+def _tag(keyword: str) -> int:
+    tag = tag_for_keyword(keyword)
+    if tag is None:
+        raise AssertionError(f"not a DICOM keyword: {keyword}")
+    return tag
+
+
+_GEOMETRY_TAGS = tuple((t, dictionary_VR(t)) for t in map(_tag, _GEOMETRY))
 
 
 def _from_ref(ref: Dataset) -> tuple[tuple[str, ...], tuple[bool, ...]]:

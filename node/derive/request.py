@@ -210,6 +210,10 @@ class DerivedRequest:
     m0
         The unsaturated images ``(slices, rows, cols)`` under the colour overlay of the
         Secondary Capture (only that builder needs them).
+    m0_range
+        ``(low, high)`` grey window of ``m0`` under the overlay; default
+        :func:`node.derive.render.robust_range` of ``m0`` (a series' methods share one M0, so
+        the node computes it once and passes it to each).
     display_range
         ``(low, high)`` of the window and the colour scale in the map's unit; default: the
         2nd and 98th percentiles of the valid voxels (common practice for a robust window).
@@ -232,6 +236,7 @@ class DerivedRequest:
     series_number: int
     m0: np.ndarray | None = None
     display_range: tuple[float, float] | None = None
+    m0_range: tuple[float, float] | None = None
     unit_meaning: str = ""
     sources: list[Dataset] | None = None
     note: str = ""
@@ -290,6 +295,11 @@ class DerivedRequest:
             if m0.shape != values.shape:
                 raise ValueError(f"m0 has shape {m0.shape} but values have {values.shape}")
             self.m0 = m0.astype(np.float32, copy=False)
+        if self.m0_range is not None:
+            g_lo, g_hi = (float(x) for x in self.m0_range)
+            if not (math.isfinite(g_lo) and math.isfinite(g_hi) and g_hi > g_lo):
+                raise ValueError(f"m0_range must be finite with high > low, got {self.m0_range!r}")
+            self.m0_range = (g_lo, g_hi)
         if self.display_range is None:
             finite = values[np.isfinite(values)]
             if finite.size:

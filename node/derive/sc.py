@@ -72,7 +72,7 @@ def build(req: DerivedRequest, *, template: bool = True) -> list[Dataset]:
     rows, cols = req.values.shape[1:]
     renderer = SliceRenderer(rows, cols, title=req.title, unit=req.unit_ucum,
                              display_range=req.display_range)
-    m0_range = robust_range(req.m0)
+    m0_range = req.m0_range if req.m0_range is not None else robust_range(req.m0)
     description = research_description(req.title, "SC", req.note)
     comments = (f"{req.title} [{req.unit_ucum}] over M0. {req.note + ' ' if req.note else ''}"
                 f"{RESEARCH_STATEMENT}")

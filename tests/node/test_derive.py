@@ -541,3 +541,32 @@ def test_derived_mr_template_gives_the_objects_built_attribute_by_attribute():
     assert fast[1]["Modality"] is fast[0]["Modality"]
     assert fast[1]["SOPInstanceUID"] is not fast[0]["SOPInstanceUID"]
     assert fast[1].file_meta is not fast[0].file_meta
+
+
+def test_a_given_m0_window_is_the_one_the_builder_would_compute():
+    """The node computes the M0's grey window once per series and passes it to every
+    method's Secondary Capture (DerivedRequest.m0_range): the same pixels as the builder's
+    own robust_range of the same M0; a window that is not one is refused by name."""
+    from node.derive.render import robust_range
+
+    req = make_request("secondary_capture")
+    given = make_request("secondary_capture", m0_range=robust_range(req.m0))
+    a, b = BUILDERS["secondary_capture"](req), BUILDERS["secondary_capture"](given)
+    assert [x.PixelData for x in a] == [y.PixelData for y in b]
+    other = BUILDERS["secondary_capture"](make_request("secondary_capture", m0_range=(0.0, 1e-3)))
+    assert other[0].PixelData != a[0].PixelData  # the window is used
+    for bad in ((1.0, 1.0), (0.0, float("nan"))):
+        with pytest.raises(ValueError, match="m0_range must be finite with high > low"):
+            make_request("secondary_capture", m0_range=bad)
+
+
+def test_a_method_result_computes_its_display_range_once(monkeypatch):
+    from node import pipeline
+
+    values = np.linspace(-1.0, 4.0, 1000).reshape(10, 10, 10).astype(np.float32)
+    res = pipeline.MethodResult("mtr_asym", TITLE, "%", values, 0.0, 1000)
+    calls = []
+    real = pipeline.display_range
+    monkeypatch.setattr(pipeline, "display_range", lambda v: calls.append(1) or real(v))
+    assert res.display == real(values) == res.display
+    assert len(calls) == 1
