@@ -63,6 +63,8 @@ def _executor(threads: int) -> ThreadPoolExecutor:
     global _pool, _pool_size, _pool_pid
     with _lock:
         if _pool is None or _pool_pid != os.getpid() or _pool_size < threads:
+            if _pool is not None and _pool_pid == os.getpid():
+                _pool.shutdown(wait=False)  # too small: its idle threads end
             _pool = ThreadPoolExecutor(threads, thread_name_prefix="quant-part")
             _pool_size, _pool_pid = threads, os.getpid()
         return _pool
@@ -79,10 +81,16 @@ def in_parts(n: int, part: Callable[[int, int], object], *, min_rows: int = 4096
         return
     bounds = [n * i // k for i in range(k + 1)]
     pool = _executor(k - 1)
-    futures: list[Future[object]] = [pool.submit(part, bounds[i], bounds[i + 1])
-                                     for i in range(1, k)]
+    futures: list[Future[object]] = []
+    here = [(bounds[0], bounds[1])]
+    for i in range(1, k):
+        try:
+            futures.append(pool.submit(part, bounds[i], bounds[i + 1]))
+        except RuntimeError:  # the pool was shut down meanwhile (set_workers): run it here
+            here.append((bounds[i], bounds[i + 1]))
     try:
-        part(bounds[0], bounds[1])
+        for lo, hi in here:
+            part(lo, hi)
     finally:  # every part writes into the caller's arrays: none may still run after a raise
         errors = [f.exception() for f in futures]
     for exc in errors:
