@@ -75,12 +75,13 @@ def in_parts(n: int, part: Callable[[int, int], object], *, min_rows: int = 4096
     thread of :func:`workers` and none shorter than ``min_rows`` (one call ``part(0, n)``
     where the batch is too small to cut). Returns when every part has returned; the first
     exception of a part is raised then."""
-    k = min(workers(), n // max(min_rows, 1))
+    w = workers()
+    k = min(w, n // max(min_rows, 1))
     if k <= 1:
         part(0, n)
         return
     bounds = [n * i // k for i in range(k + 1)]
-    pool = _executor(k - 1)
+    pool = _executor(w - 1)  # one size for every call (its threads start as parts arrive)
     futures: list[Future[object]] = []
     here = [(bounds[0], bounds[1])]
     for i in range(1, k):
