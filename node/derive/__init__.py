@@ -33,9 +33,11 @@ from collections.abc import Callable
 
 from pydicom import Dataset
 
-from node.derive import mr, pm, sc, seg, sr, summary
+from node.derive import iodtable, mr, pm, sc, seg, sr, summary
 from node.derive.report import ReportRequest, qc_note
 from node.derive.request import RESEARCH_MARKER, DerivedRequest, header_only, output_uid
+
+iodtable.install()  # highdicom's IOD table lookups, remembered (node.derive.iodtable)
 
 Builder = Callable[[DerivedRequest], list[Dataset]]
 

@@ -570,3 +570,31 @@ def test_a_method_result_computes_its_display_range_once(monkeypatch):
     monkeypatch.setattr(pipeline, "display_range", lambda v: calls.append(1) or real(v))
     assert res.display == real(values) == res.display
     assert len(calls) == 1
+
+
+def test_the_remembered_iod_lookup_answers_as_highdicom_does():
+    """node.derive.iodtable: highdicom's is_attribute_in_iod, memoised, in every module of
+    highdicom that binds it; the same answer as highdicom's own function for attributes in
+    and out of the IODs the builders make and read (PS3.3 IOD tables, as highdicom has them)."""
+    import highdicom._standard_utils as su
+    import highdicom.base
+    import highdicom.sr.content
+
+    from node.derive import iodtable
+
+    assert iodtable.install()  # already in place: installed once, on import
+    for mod in (su, highdicom.base, highdicom.sr.content):
+        assert mod.is_attribute_in_iod is iodtable.is_attribute_in_iod
+    original = iodtable._original
+    assert original is not None and original is not iodtable.is_attribute_in_iod
+    classes = ["1.2.840.10008.5.1.4.1.1.4", "1.2.840.10008.5.1.4.1.1.4.1",  # MR, Enhanced MR
+               "1.2.840.10008.5.1.4.1.1.30", "1.2.840.10008.5.1.4.1.1.7",  # PM, SC
+               "1.2.840.10008.5.1.4.1.1.88.34", "1.2.840.10008.5.1.4.1.1.66.4"]  # 3D SR, SEG
+    for uid in classes:
+        for kw in ("NumberOfFrames", "ContentDate", "PixelData", "FloatPixelData",
+                   "ImagePositionPatient", "NotAnAttribute"):
+            for ex in (None, ["IconImageSequence"]):
+                assert iodtable.is_attribute_in_iod(kw, uid, ex) == original(kw, uid, ex), (
+                    kw, uid, ex)
+    with pytest.raises(KeyError, match="No IOD found"):
+        iodtable.is_attribute_in_iod("PixelData", "1.2.3")
