@@ -121,11 +121,16 @@ class Prepared:
             return self.corrected
 
     def band(self, reads_ppm: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray]:
-        """The B0-corrected rows at the columns a method reading ``reads_ppm`` needs
+        """B0-corrected rows at (at least) the columns a method reading ``reads_ppm`` needs
         (:func:`quant.registry.band_columns`) and their offsets. The same values as those
-        columns of :attr:`zv` (the same spline, evaluated at fewer points)."""
-        cols = band_columns(self.offsets_ppm, reads_ppm)
-        # one resample serves every model-free method: the columns all of them read
+        columns of :attr:`zv` (the same spline, evaluated at fewer points).
+
+        One resample serves every model-free method: the columns all of them read (their
+        union, with ``reads_ppm``). It is returned whole, not cut to the method's own
+        columns: a model-free measure reads the samples nearest each offset it reads
+        (:func:`quant.measures.z_at`), and the union holds the same nearest samples with the
+        same margin, so the values are the same bit for bit (tested), without a copy of the
+        band per method (12 of 20 columns of 353,000 rows: 11.5 ms at 40 slices here)."""
         union = band_columns(self.offsets_ppm, tuple(sorted(
             {*reads_ppm, *(t for m in METHODS.values() if m.model_free and m.reads_ppm
                            for t in m.reads_ppm)})))
@@ -141,7 +146,7 @@ class Prepared:
                         self.zv_uncorrected, self.offsets_ppm, self.shift_v, columns=union)
                     self.seconds["b0_band"] = time.perf_counter() - t0
             band = self._cache[key]
-        return band[:, np.searchsorted(union, cols)], self.offsets_ppm[cols]
+        return band, self.offsets_ppm[union]
 
     def volume(self, rows: np.ndarray) -> np.ndarray:
         """Per-voxel rows ``(n_voxels, ...)`` scattered into the volume, NaN elsewhere."""
