@@ -121,6 +121,9 @@ class ReportRequest:
         The output series (one request builds one series).
     m0
         The unsaturated images; needed by the summary page.
+    m0_range
+        The grey window of ``m0`` under the summary page's colour maps; default as in
+        DerivedRequest (the node passes the one its Secondary Captures use).
     qc
         Quality figures of the series (:class:`quant.qc.QcFigures`); a field left None is
         "not measured" and is left out of the report.
@@ -146,6 +149,7 @@ class ReportRequest:
     series_uid: str
     series_number: int
     m0: np.ndarray | None = None
+    m0_range: tuple[float, float] | None = None
     qc: QcFigures = field(default_factory=QcFigures)
     qc_reasons: list[QcReason] = field(default_factory=list)
     parametric_maps: dict[str, Dataset] = field(default_factory=dict)
@@ -198,11 +202,13 @@ class ReportRequest:
                 method=method, title=title, unit_ucum=unit, series_uid=self.series_uid,
                 series_number=self.series_number, m0=self.m0 if refs is None else None,
                 display_range=self.display_ranges.get(method),
+                m0_range=self.m0_range if refs is None and self.m0 is not None else None,
             )
             if refs is None:
                 refs = dr.references
                 self.references = refs
                 self.m0 = dr.m0
+                self.m0_range = dr.m0_range
                 self.mask = _bool_mask(self.mask, dr.values.shape)
                 iop = [float(x) for x in refs[0].ImageOrientationPatient]
                 self.left_axis, self.left_is_increasing = left_axis_from_orientation(iop)

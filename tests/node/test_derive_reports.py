@@ -392,3 +392,16 @@ def test_summary_without_m0_is_refused(case):
     req = make_req(case, m0=None)
     with pytest.raises(ValueError, match="summary page needs m0"):
         REPORT_BUILDERS["summary"](req)
+
+
+def test_a_given_m0_window_is_the_one_the_summary_page_would_compute(case):
+    """The node passes its Secondary Captures' M0 window to the summary page
+    (ReportRequest.m0_range): the same pixels as the page's own robust_range of the M0."""
+    from node.derive.render import robust_range
+
+    req = make_req(case)
+    own = REPORT_BUILDERS["summary"](req)[0]
+    given = REPORT_BUILDERS["summary"](make_req(case, m0_range=robust_range(req.m0)))[0]
+    assert own.PixelData == given.PixelData
+    other = REPORT_BUILDERS["summary"](make_req(case, m0_range=(0.0, 1e-3)))[0]
+    assert other.PixelData != own.PixelData
