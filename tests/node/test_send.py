@@ -495,7 +495,7 @@ def test_direct_request_encodes_as_the_library_does() -> None:
     from pynetdicom.dimse_primitives import C_STORE
     from pynetdicom.dsutils import encode
 
-    from node.fastpath import encode_store_request, pdata_pdus
+    from node.fastpath import encode_store_request, pdata_pdus, pdata_stream
 
     ds = secondary_capture(mr_batch()[0])
     data = encode(ds, False, True)
@@ -513,6 +513,15 @@ def test_direct_request_encodes_as_the_library_does() -> None:
     for max_pdu in (16384, 4096, 0):
         theirs = [pdu for p in msg.encode_msg(3, max_pdu) for pdu in _pdus_of(p)]
         assert pdata_pdus(3, command, data, max_pdu) == theirs
+        # the one-buffer form (what store_direct sends) is the same bytes
+        assert pdata_stream(3, command, data, max_pdu) == b"".join(theirs)
+    # and so at the edges: empty and one-byte values, lengths at and around a PDU's payload
+    for max_pdu in (64, 70, 0):
+        for n in (0, 1, 57, 58, 59, 116, 117, 1000):
+            payload = bytes(range(256)) * 4
+            cmd, dat = payload[:n % 90], payload[:n]
+            assert pdata_stream(5, cmd, dat, max_pdu) == b"".join(pdata_pdus(5, cmd, dat,
+                                                                              max_pdu))
 
 
 def _pdus_of(primitive):  # type: ignore[no-untyped-def]
