@@ -458,7 +458,7 @@ def test_fast_path_reads_pdus_split_anywhere_and_a_release_behind_the_data(tmp_p
             for i, ds in enumerate(dss):
                 data = encode(ds, False, True)
                 cmd = fastpath.encode_store_request(i + 1, UID_CLASS, str(ds.SOPInstanceUID))
-                streams.append(b"".join(fastpath.pdata_pdus(1, cmd, data, 1000)))
+                streams.append(bytes(fastpath.pdata_stream(1, cmd, data, 1000)))
             _dribble(sock, streams[0], rng)
             kind, body = _read_pdu(sock)
             assert kind == 0x04 and _response_status(body) == 0x0000
@@ -495,11 +495,11 @@ def test_fast_path_reads_a_pdu_beyond_its_buffer_and_many_pdus_in_one_read(tmp_p
             cmds = [fastpath.encode_store_request(i + 1, UID_CLASS, str(ds.SOPInstanceUID))
                     for i, ds in enumerate(sent)]
             assert len(data[0]) > fastpath._RECV_BUFFER  # the premise: beyond the buffer
-            stream = b"".join(fastpath.pdata_pdus(1, cmds[0], data[0], 0))  # one data PDU
+            stream = bytes(fastpath.pdata_stream(1, cmds[0], data[0], 0))  # one data PDU
             both = (struct.pack(">LBB", len(cmds[1]) + 2, 1, 0x03) + cmds[1]
                     + struct.pack(">LBB", len(data[1]) + 2, 1, 0x02) + data[1])
             stream += struct.pack(">BBL", 0x04, 0, len(both)) + both
-            stream += b"".join(fastpath.pdata_pdus(1, cmds[2], data[2], 64))  # 64-byte PDUs
+            stream += bytes(fastpath.pdata_stream(1, cmds[2], data[2], 64))  # 64-byte PDUs
             sock.sendall(stream)
             for _ in sent:
                 kind, body = _read_pdu(sock)
@@ -545,7 +545,7 @@ def test_a_pdu_longer_than_announced_goes_to_the_library_and_the_node_serves_on(
         # a second association is served as usual, by the fast path
         with _associated(rx.port) as sock:
             cmd = fastpath.encode_store_request(1, UID_CLASS, str(dss[0].SOPInstanceUID))
-            sock.sendall(b"".join(fastpath.pdata_pdus(1, cmd, encode(dss[0], False, True),
+            sock.sendall(bytes(fastpath.pdata_stream(1, cmd, encode(dss[0], False, True),
                                                       16384)))
             kind, body = _read_pdu(sock)
             assert kind == 0x04 and _response_status(body) == 0x0000

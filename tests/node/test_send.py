@@ -487,7 +487,7 @@ def test_response_queue_keeps_responses_for_the_waiting_sender() -> None:
 
 # --------------------------------------------------------------------------- the direct path
 def test_direct_request_encodes_as_the_library_does() -> None:
-    # node.fastpath.encode_store_request and pdata_pdus against pynetdicom 3.0's own encoding
+    # node.fastpath.encode_store_request and pdata_stream against pynetdicom 3.0's own encoding
     # of the same C-STORE-RQ (dimse_messages.C_STORE_RQ.encode_msg, the reference here): the
     # command set byte for byte, and the P-DATA-TF PDUs (PS3.8 9.3.5) cut at the peer's
     # maximum length (PS3.8 D.1) as the library cuts them
@@ -495,7 +495,7 @@ def test_direct_request_encodes_as_the_library_does() -> None:
     from pynetdicom.dimse_primitives import C_STORE
     from pynetdicom.dsutils import encode
 
-    from node.fastpath import encode_store_request, pdata_pdus, pdata_stream
+    from node.fastpath import encode_store_request, pdata_stream
 
     ds = secondary_capture(mr_batch()[0])
     data = encode(ds, False, True)
@@ -512,16 +512,18 @@ def test_direct_request_encodes_as_the_library_does() -> None:
     assert encode_store_request(7, str(ds.SOPClassUID), str(ds.SOPInstanceUID)) == command
     for max_pdu in (16384, 4096, 0):
         theirs = [pdu for p in msg.encode_msg(3, max_pdu) for pdu in _pdus_of(p)]
-        assert pdata_pdus(3, command, data, max_pdu) == theirs
-        # the one-buffer form (what store_direct sends) is the same bytes
         assert pdata_stream(3, command, data, max_pdu) == b"".join(theirs)
-    # and so at the edges: empty and one-byte values, lengths at and around a PDU's payload
+    # and at the edges: a one-byte data set, lengths at and around a PDU's payload (the
+    # command set itself spans several 64-byte PDUs)
+    payload = bytes(range(256)) * 4
     for max_pdu in (64, 70, 0):
-        for n in (0, 1, 57, 58, 59, 116, 117, 1000):
-            payload = bytes(range(256)) * 4
-            cmd, dat = payload[:n % 90], payload[:n]
-            assert pdata_stream(5, cmd, dat, max_pdu) == b"".join(pdata_pdus(5, cmd, dat,
-                                                                              max_pdu))
+        for n in (1, 57, 58, 59, 116, 117, 1000):
+            req.DataSet = __import__("io").BytesIO(payload[:n])
+            msg = C_STORE_RQ()
+            msg.primitive_to_message(req)
+            theirs = [pdu for p in msg.encode_msg(3, max_pdu) for pdu in _pdus_of(p)]
+            assert pdata_stream(3, command, payload[:n], max_pdu) == b"".join(theirs), (
+                max_pdu, n)
 
 
 def _pdus_of(primitive):  # type: ignore[no-untyped-def]
