@@ -20,7 +20,6 @@ import highdicom as hd
 import numpy as np
 from pydicom import Dataset
 from pydicom.datadict import dictionary_VR, tag_for_keyword
-from pydicom.dataelem import DataElement
 from pydicom.dataset import FileMetaDataset
 from pydicom.sequence import Sequence as DicomSequence
 from pydicom.uid import UID, ExplicitVRLittleEndian, MRImageStorage
@@ -38,6 +37,7 @@ from node.derive.request import (
     now_da_tm,
     output_uid,
     research_description,
+    slice_copy,
     source_image_item,
 )
 
@@ -231,25 +231,11 @@ def _from_ref(ref: Dataset) -> tuple[tuple[str, ...], tuple[bool, ...]]:
 
 def _like(first: Dataset, first_ref: tuple[tuple[str, ...], tuple[bool, ...]], ref: Dataset,
           uid: UID, number: int, pixels: bytes) -> Dataset | None:
-    """``first`` with another slice's UIDs, number, geometry, source and pixels; None when
-    the slice's reference is not like the first's (its object is then built in full).
-
-    A shallow copy, as :func:`node.derive.sc._like`: a dict of its own holding ``first``'s
-    element objects, and new element objects for what differs (setting an attribute that
-    exists would change the shared element in place).
-    """
+    """``first`` with another slice's UIDs, number, geometry, source and pixels
+    (:func:`node.derive.request.slice_copy`, as the Secondary Capture builder does); None when
+    the slice's reference is not like the first's (its object is then built in full)."""
     if _from_ref(ref) != first_ref:  # the first slice's reference's, from :func:`_from_ref`
         return None
-    ds = Dataset(dict(first._dict))
-    ds.set_original_encoding(False, True, first.original_character_set)
-    ds[0x00080018] = DataElement(0x00080018, "UI", uid)
-    ds[0x00200013] = DataElement(0x00200013, "IS", number)
-    ds[0x00082112] = DataElement(0x00082112, "SQ", DicomSequence([source_image_item(ref)]))
-    for tag, vr in _GEOMETRY_TAGS:
-        if tag in ref:
-            ds[tag] = DataElement(tag, vr, ref[tag].value)
-    ds[0x7FE00010] = DataElement(0x7FE00010, first[0x7FE00010].VR, pixels)  # int16: even
-    meta = FileMetaDataset(dict(first.file_meta._dict))
-    meta[0x00020003] = DataElement(0x00020003, "UI", uid)
-    ds.file_meta = meta
-    return ds
+    geometry = tuple((tag, vr, ref[tag].value) for tag, vr in _GEOMETRY_TAGS if tag in ref)
+    return slice_copy(first, uid, number, ref, (
+        *geometry, (0x7FE00010, first[0x7FE00010].VR, pixels)))  # int16: even length

@@ -14,7 +14,9 @@ from dataclasses import dataclass, field
 import numpy as np
 from pydicom import Dataset
 from pydicom.dataelem import DataElement
+from pydicom.dataset import FileMetaDataset
 from pydicom.sequence import Sequence as DicomSequence
+from pydicom.uid import UID
 
 from node import __version__
 
@@ -125,6 +127,32 @@ def source_image_item(ref: Dataset) -> Dataset:
     # Purpose of Reference Code Sequence
     item[0x0040A170] = DataElement(0x0040A170, "SQ", DicomSequence([purpose]))
     return item
+
+
+def slice_copy(first: Dataset, uid: str, number: int, ref: Dataset,
+               elements: tuple[tuple[int, str, object], ...] = ()) -> Dataset:
+    """Another slice's object made from ``first`` (the first slice's): its own SOP Instance
+    UID (in the data set and the file meta), Instance Number, Source Image Sequence to
+    ``ref``, and ``elements`` ``(tag, VR, value)``; every other element is ``first``'s.
+
+    A shallow copy: a dict of its own holding ``first``'s element objects, and new element
+    objects for what differs. ``Dataset(first)`` would share ``first``'s dict, and setting an
+    attribute that exists changes its element in place, so neither may be used here (every
+    slice would end with the last slice's UID). The builders that use it (derived MR,
+    Secondary Capture) decide first that the slice's reference gives what the first's gave.
+    """
+    ds = Dataset(dict(first._dict))
+    ds.set_original_encoding(False, True, first.original_character_set)
+    ds[0x00080018] = DataElement(0x00080018, "UI", UID(uid))  # SOP Instance UID
+    ds[0x00200013] = DataElement(0x00200013, "IS", number)  # Instance Number
+    ds[0x00082112] = DataElement(0x00082112, "SQ",  # Source Image Sequence
+                                 DicomSequence([source_image_item(ref)]))
+    for tag, vr, value in elements:
+        ds[tag] = DataElement(tag, vr, value)
+    meta = FileMetaDataset(dict(first.file_meta._dict))
+    meta[0x00020003] = DataElement(0x00020003, "UI", UID(uid))  # Media Storage SOP Instance
+    ds.file_meta = meta
+    return ds
 
 
 def header_only(ds: Dataset) -> Dataset:

@@ -11,10 +11,7 @@ from __future__ import annotations
 import highdicom as hd
 import numpy as np
 from pydicom import Dataset
-from pydicom.dataelem import DataElement
-from pydicom.dataset import FileMetaDataset
 from pydicom.sequence import Sequence as DicomSequence
-from pydicom.uid import UID
 
 from node.derive.render import SliceRenderer, robust_range
 from node.derive.request import (
@@ -26,6 +23,7 @@ from node.derive.request import (
     copy_keywords,
     output_uid,
     research_description,
+    slice_copy,
     source_image_item,
 )
 
@@ -126,28 +124,16 @@ def _from_ref(ref: Dataset) -> tuple[str, ...]:
 
 def _like(first: Dataset, first_ref: tuple[str, ...], rgb: np.ndarray, uid: str, number: int,
           ref: Dataset) -> Dataset | None:
-    """``first`` with another slice's pixels, UIDs, number and source; None when the slice's
-    reference is not like the first's (its object is then built in full).
-
-    A shallow copy: a dict of its own holding ``first``'s element objects, and new element
-    objects for what differs. ``Dataset(first)`` would share ``first``'s dict, and setting an
-    attribute that exists changes its element in place, so neither may be used here (every
-    slice would end with the last slice's UID).
-    """
+    """``first`` with another slice's pixels, UIDs, number and source
+    (:func:`node.derive.request.slice_copy`); None when the slice's reference is not like the
+    first's (its object is then built in full)."""
     if rgb.shape != (first[0x00280010].value, first[0x00280011].value, 3) or (
             _from_ref(ref) != first_ref):  # the first slice's reference's
         return None
     data = np.ascontiguousarray(rgb, dtype=np.uint8).tobytes()  # PlanarConfiguration 0
-    sc = Dataset(dict(first._dict))
-    sc.set_original_encoding(False, True, first.original_character_set)
-    for tag, vr, value in ((0x00080018, "UI", uid), (0x00200013, "IS", number),
-                           (0x00082112, "SQ", DicomSequence([source_image_item(ref)])),
-                           (0x7FE00010, "OB", data + b"\0" if len(data) % 2 else data)):
-        sc[tag] = DataElement(tag, vr, value)  # even length (PS3.5 7.1.1)
-    meta = FileMetaDataset(dict(first.file_meta._dict))
-    meta[0x00020003] = DataElement(0x00020003, "UI", UID(uid))
-    sc.file_meta = meta
-    return sc
+    # even length (PS3.5 7.1.1)
+    return slice_copy(first, uid, number, ref,
+                      ((0x7FE00010, "OB", data + b"\0" if len(data) % 2 else data),))
 
 
 def _text(value: object) -> str:
