@@ -3,6 +3,7 @@ equations and the bounded Levenberg-Marquardt trial step of every voxel (its dam
 solved by Cholesky); of the B0 estimate, the weighted parabola fit around each voxel's
 sampled minimum (:func:`b0_vertex`); of the normalisation, the gather of the brain voxels'
 spectra sorted by offset and divided by M0 in one pass (:func:`gather_scaled`); of the
+B0 band, a block's spline values written into their rows (:func:`spline_rows`); of the
 frames' layout, the tiled transposition of a slice's frames into its spectra
 (:func:`frames_to_rows`).
 
@@ -21,8 +22,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["b0_vertex", "frames_to_rows", "gather_scaled", "spline_rows", "lm_trial", "lorentz_normal", "predicted_reduction",
-           "rows_finite"]
+__all__ = ["b0_vertex", "frames_to_rows", "gather_scaled", "lm_trial", "lorentz_normal",
+           "predicted_reduction", "rows_finite", "spline_rows"]
 
 #: LLVM may reassociate and contract (fused multiply-add) sums, so that it vectorises the dot
 #: products; no assumption that values are finite (NaN and infinity checks stay exact)

@@ -6,7 +6,10 @@ gives the same values bit for bit as one call over the whole batch, in a fractio
 time where cores are free: in a node that is right after a series' last instance, when the
 receive, the sender and the archive all wait for these loops. numpy's own expressions gain
 nothing this way here (the B0 band's resample, about 40 numpy calls a block, took 135 ms on
-two threads against 118 ms on one), so only the compiled loops use it.
+two threads against 118 ms on one), so only the compiled loops use it: the brain voxels'
+gather (:func:`quant.normalize`), the finite check (:func:`quant.finite_rows`), the B0
+estimate, and the layout of a series' slices (:func:`quant.spectra_from_frames`, by the
+assembler).
 
 :func:`in_parts` runs one part on the calling thread and the others on a small shared pool
 (``workers() - 1`` threads, made on first use and again in a forked child). A part must not
@@ -30,7 +33,6 @@ DEFAULT_MAX_WORKERS = 4
 _lock = threading.Lock()
 _workers: int | None = None  # None: the default
 _pool: ThreadPoolExecutor | None = None
-_pool_size = 0
 _pool_pid = 0
 
 
@@ -59,14 +61,14 @@ def set_workers(n: int | None) -> None:
         old.shutdown(wait=False)
 
 
-def _executor(threads: int) -> ThreadPoolExecutor:
-    global _pool, _pool_size, _pool_pid
+def _executor() -> ThreadPoolExecutor:
+    """The shared pool of ``workers() - 1`` threads (made again after :func:`set_workers`,
+    which drops it, and in a forked child, which has none of its threads)."""
+    global _pool, _pool_pid
     with _lock:
-        if _pool is None or _pool_pid != os.getpid() or _pool_size < threads:
-            if _pool is not None and _pool_pid == os.getpid():
-                _pool.shutdown(wait=False)  # too small: its idle threads end
-            _pool = ThreadPoolExecutor(threads, thread_name_prefix="quant-part")
-            _pool_size, _pool_pid = threads, os.getpid()
+        if _pool is None or _pool_pid != os.getpid():
+            _pool = ThreadPoolExecutor(max(1, workers() - 1), thread_name_prefix="quant-part")
+            _pool_pid = os.getpid()
         return _pool
 
 
@@ -81,7 +83,7 @@ def in_parts(n: int, part: Callable[[int, int], object], *, min_rows: int = 4096
         part(0, n)
         return
     bounds = [n * i // k for i in range(k + 1)]
-    pool = _executor(w - 1)  # one size for every call (its threads start as parts arrive)
+    pool = _executor()  # its threads start as parts arrive
     futures: list[Future[object]] = []
     here = [(bounds[0], bounds[1])]
     for i in range(1, k):

@@ -237,7 +237,7 @@ def finite_rows(z: ArrayLike) -> NDArray[np.bool_]:
     if flat.dtype.kind != "f":
         out[:] = True
     else:
-        _jit.rows_finite(flat, out)
+        in_parts(flat.shape[0], lambda lo, hi: _jit.rows_finite(flat[lo:hi], out[lo:hi]))
     return out.reshape(arr.shape[:-1])
 
 
