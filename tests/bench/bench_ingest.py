@@ -20,7 +20,7 @@ time is storescu's wall clock, from its start to its exit after the last respons
 assembly of the complete series is waited for (not timed) before the next run. The summary
 gives the median of the pairwise ratios and their range (the spread between pairs).
 
-Run: ``.venv/bin/python -m tests.bench.bench_ingest [--runs 5] [--no-library]``
+Run: ``.venv/bin/python -m tests.bench.bench_ingest [--runs 5] [--no-library] [--tmpfs]``
 """
 
 from __future__ import annotations
@@ -47,6 +47,7 @@ from node.memory import (
 from node.receive import Receiver
 from node.spool import Spool
 from node.synth import series_from_arrays, write_series
+from tests.bench import add_tmpfs_option, use_tmpfs
 from tests.peers import StoreSCP, storescu
 
 SLICES, OFFSETS, SIZE = 20, 61, 128
@@ -119,7 +120,9 @@ def main() -> None:
     ap.add_argument("--runs", type=int, default=5, help="pairs per configuration (>= 5)")
     ap.add_argument("--no-library", action="store_true",
                     help="skip the configurations with the fast path off")
+    add_tmpfs_option(ap)
     args = ap.parse_args()
+    print(use_tmpfs(args), flush=True)
     logging.basicConfig(level=logging.ERROR)
     tune_allocator()  # the node's start-up tuning, as Node.start applies it (node.memory)
     reserve_heap()

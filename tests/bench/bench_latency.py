@@ -19,7 +19,7 @@ Each run starts a new node on a new spool (the cost model's start-up calibration
 once per process); the model-based deferred pass is off (it runs outside the budget and would
 only take CPU from the next run). ``fsync`` is the config's safe default unless ``--no-fsync``.
 
-Run: ``.venv/bin/python -m tests.bench.bench_latency [--runs 5] [--archive both|orthanc|storescp]``
+Run: ``.venv/bin/python -m tests.bench.bench_latency [--runs 5] [--archive both|orthanc|storescp] [--tmpfs]``
 """
 
 from __future__ import annotations
@@ -43,6 +43,7 @@ from node.memory import tune_allocator
 from node.service import Node, SeriesOutcome
 from node.synth import series_from_arrays, write_series
 from quant.phantom import make_phantom
+from tests.bench import add_tmpfs_option, use_tmpfs
 from tests.peers import Orthanc, StoreSCP, storescu
 
 OFFSETS, SIZE = 61, 128
@@ -156,7 +157,9 @@ def main() -> None:
     ap.add_argument("--slices", type=int, default=20)
     ap.add_argument("--archive", choices=["both", "orthanc", "storescp"], default="both")
     ap.add_argument("--no-fsync", action="store_true", help="spool without fsync")
+    add_tmpfs_option(ap)
     args = ap.parse_args()
+    where = use_tmpfs(args)
     logging.basicConfig(level=logging.ERROR)
     if args.runs < 5:
         print("note: fewer than 5 runs; the medians are rough")
@@ -164,7 +167,7 @@ def main() -> None:
         files = make_files(Path(tmp) / "series", slices=args.slices)
         kinds = ["orthanc", "storescp"] if args.archive == "both" else [args.archive]
         print(f"series: {len(files)} instances ({args.slices} slices x {OFFSETS} offsets x "
-              f"{SIZE} x {SIZE}); fsync {'off' if args.no_fsync else 'on'}", flush=True)
+              f"{SIZE} x {SIZE}); fsync {'off' if args.no_fsync else 'on'}; {where}", flush=True)
         for kind in kinds:
             print(f"archive {kind}:", flush=True)
             m = measure(files, kind, args.runs, fsync=not args.no_fsync)

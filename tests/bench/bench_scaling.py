@@ -10,7 +10,7 @@ instances), and the growth from the smallest to the largest series is set beside
 the series itself: the latency after the last instance should grow far slower than the size.
 
 Run: ``.venv/bin/python -m tests.bench.bench_scaling [--runs 5] [--slices 5 20 40]
-[--archive storescp|orthanc]``
+[--archive storescp|orthanc] [--tmpfs]``
 """
 
 from __future__ import annotations
@@ -24,6 +24,7 @@ from pathlib import Path
 import numpy as np
 
 from node.memory import tune_allocator
+from tests.bench import add_tmpfs_option, use_tmpfs
 from tests.bench.bench_latency import make_files, measure, p95
 
 
@@ -34,7 +35,9 @@ def main() -> None:
     ap.add_argument("--slices", type=int, nargs="+", default=[5, 20, 40])
     ap.add_argument("--archive", choices=["orthanc", "storescp"], default="storescp")
     ap.add_argument("--no-fsync", action="store_true")
+    add_tmpfs_option(ap)
     args = ap.parse_args()
+    print(use_tmpfs(args), flush=True)
     logging.basicConfig(level=logging.ERROR)
     rows = []
     with tempfile.TemporaryDirectory() as tmp:

@@ -13,7 +13,7 @@ records' ``stages_ms`` and its share of the median ``total_ms`` (last instance -
 model-free outputs acknowledged), then the cost model's honesty: the median ratio measured /
 predicted of each part (compute, build, send) of each method.
 
-Run: ``.venv/bin/python -m tests.bench.bench_stages [--runs 5] [--series 5] [--slices 20]``
+Run: ``.venv/bin/python -m tests.bench.bench_stages [--runs 5] [--series 5] [--slices 20] [--tmpfs]``
 """
 
 from __future__ import annotations
@@ -31,6 +31,7 @@ from node import pipeline
 from node.memory import tune_allocator
 from quant.phantom import make_phantom
 from quant.registry import METHODS
+from tests.bench import add_tmpfs_option, use_tmpfs
 from tests.bench.bench_latency import make_files, measure
 
 
@@ -117,7 +118,9 @@ def main() -> None:
     ap.add_argument("--runs", type=int, default=5)
     ap.add_argument("--series", type=int, default=5, help="series end to end (0: skip)")
     ap.add_argument("--slices", type=int, default=20)
+    add_tmpfs_option(ap)
     args = ap.parse_args()
+    print(use_tmpfs(args), flush=True)
     logging.basicConfig(level=logging.ERROR)
     chain_per_voxel(args.runs, args.slices)
     if args.series:
