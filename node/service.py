@@ -454,7 +454,7 @@ class Processor:
                 # the first report's number, and the next ones for the deferred report
                 series_number=number if deferred is None else number + 1 + i,
                 m0=prep.m0,
-                m0_range=self._m0_range(prep) if kind == "summary" else None,
+                m0_range=self._m0_range(prep),  # else each request computes it again
                 qc=figures,
                 qc_reasons=reasons,
                 parametric_maps={r.name: pm for r, pm in results if pm is not None},

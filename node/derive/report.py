@@ -123,7 +123,8 @@ class ReportRequest:
         The unsaturated images; needed by the summary page.
     m0_range
         The grey window of ``m0`` under the summary page's colour maps; default as in
-        DerivedRequest (the node passes the one its Secondary Captures use).
+        DerivedRequest, which sets it with ``m0`` (the node passes the one its Secondary
+        Captures use).
     qc
         Quality figures of the series (:class:`quant.qc.QcFigures`); a field left None is
         "not measured" and is left out of the report.

@@ -19,6 +19,7 @@ from pydicom.sequence import Sequence as DicomSequence
 from pydicom.uid import UID
 
 from node import __version__
+from node.derive.render import robust_range
 
 MANUFACTURER = "cest-node"
 SOFTWARE_VERSIONS = f"cest-node {__version__}"
@@ -239,9 +240,9 @@ class DerivedRequest:
         The unsaturated images ``(slices, rows, cols)`` under the colour overlay of the
         Secondary Capture (only that builder needs them).
     m0_range
-        ``(low, high)`` grey window of ``m0`` under the overlay; default
-        :func:`node.derive.render.robust_range` of ``m0`` (a series' methods share one M0, so
-        the node computes it once and passes it to each).
+        ``(low, high)`` grey window of ``m0`` under the overlay; default (set here when ``m0``
+        is given) :func:`node.derive.render.robust_range` of ``m0`` (a series' methods share
+        one M0, so the node computes it once and passes it to each).
     display_range
         ``(low, high)`` of the window and the colour scale in the map's unit; default: the
         2nd and 98th percentiles of the valid voxels (common practice for a robust window).
@@ -328,6 +329,8 @@ class DerivedRequest:
             if not (math.isfinite(g_lo) and math.isfinite(g_hi) and g_hi > g_lo):
                 raise ValueError(f"m0_range must be finite with high > low, got {self.m0_range!r}")
             self.m0_range = (g_lo, g_hi)
+        elif self.m0 is not None:
+            self.m0_range = robust_range(self.m0)
         if self.display_range is None:
             finite = values[np.isfinite(values)]
             if finite.size:

@@ -13,7 +13,7 @@ import numpy as np
 from pydicom import Dataset
 from pydicom.sequence import Sequence as DicomSequence
 
-from node.derive.render import SliceRenderer, robust_range
+from node.derive.render import SliceRenderer
 from node.derive.request import (
     MANUFACTURER,
     RESEARCH_STATEMENT,
@@ -70,7 +70,8 @@ def build(req: DerivedRequest, *, template: bool = True) -> list[Dataset]:
     rows, cols = req.values.shape[1:]
     renderer = SliceRenderer(rows, cols, title=req.title, unit=req.unit_ucum,
                              display_range=req.display_range)
-    m0_range = req.m0_range if req.m0_range is not None else robust_range(req.m0)
+    assert req.m0_range is not None  # DerivedRequest sets it with m0
+    m0_range = req.m0_range
     description = research_description(req.title, "SC", req.note)
     comments = (f"{req.title} [{req.unit_ucum}] over M0. {req.note + ' ' if req.note else ''}"
                 f"{RESEARCH_STATEMENT}")

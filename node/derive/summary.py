@@ -28,7 +28,6 @@ from node.derive.render import (
     _fit_font,
     _tick_format,
     font,
-    robust_range,
 )
 from node.derive.report import MethodSummary, ReportRequest, report_description
 from node.derive.request import (
@@ -126,7 +125,8 @@ class _Page:
         assert req.m0 is not None
         canvas = np.empty((self.height, self.width, 3), dtype=np.uint8)
         canvas[...] = _BG
-        m0_range = req.m0_range if req.m0_range is not None else robust_range(req.m0)
+        assert req.m0_range is not None  # set with m0 (ReportRequest, DerivedRequest)
+        m0_range = req.m0_range
         for i, (ms, rend) in enumerate(zip(req.methods.values(), self.renderers, strict=True)):
             x, y = self.panel_origin(i)
             tile = rend.render(ms.values[k], req.m0[k], m0_range=m0_range)
