@@ -6,6 +6,7 @@ presentation context negotiation those of PS3.8 9.3.
 
 from __future__ import annotations
 
+import io
 import logging
 import queue
 import threading
@@ -505,7 +506,7 @@ def test_direct_request_encodes_as_the_library_does() -> None:
     req.Priority = 2
     req.AffectedSOPClassUID = ds.SOPClassUID
     req.AffectedSOPInstanceUID = ds.SOPInstanceUID
-    req.DataSet = __import__("io").BytesIO(data)
+    req.DataSet = io.BytesIO(data)
     msg = C_STORE_RQ()
     msg.primitive_to_message(req)
     command = encode(msg.command_set, True, True)
@@ -518,7 +519,7 @@ def test_direct_request_encodes_as_the_library_does() -> None:
     payload = bytes(range(256)) * 4
     for max_pdu in (64, 70, 0):
         for n in (1, 57, 58, 59, 116, 117, 1000):
-            req.DataSet = __import__("io").BytesIO(payload[:n])
+            req.DataSet = io.BytesIO(payload[:n])
             msg = C_STORE_RQ()
             msg.primitive_to_message(req)
             theirs = [pdu for p in msg.encode_msg(3, max_pdu) for pdu in _pdus_of(p)]
